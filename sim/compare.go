@@ -1,0 +1,72 @@
+package main
+
+import (
+	"encoding/json"
+	"os"
+	"strings"
+	"time"
+
+	"github.com/schollz/progressbar/v3"
+	"golang.org/x/term"
+
+	"baton/agentd/decide"
+	"baton/sim/compare"
+)
+
+func cmdCompare(args []string) error {
+	fs := newFlags("compare", "Runs base, all-at-once and one-at-a-time rollout on the same seeded episodes\nand prints mean cost (95% CI), mean steps, Q-factors and milliseconds per decision.")
+	var sc scenarioFlags
+	sc.register(fs)
+	episodes := fs.Int("episodes", 30, "seeded episodes per policy")
+	seed := fs.Uint64("seed", 1, "run seed (the same seed replays the same run)")
+	samples := fs.Int("samples", 16, "Monte Carlo samples per Q-factor")
+	horizon := fs.Int("horizon", 20, "base-policy steps simulated after the first step")
+	termCost := fs.Bool("terminal-cost", false, "add the scenario's cost-to-go estimate where simulations truncate")
+	maxJoint := fs.Int("max-joint", 1000, "largest number of joint controls for which all-at-once is run")
+	policies := fs.String("policies", "base,all-at-once,one-at-a-time", "comma-separated policies to run")
+	order := fs.String("order", "", "one-at-a-time turn order, e.g. 2,0,1 (default 0..m-1)")
+	workers := fs.Int("workers", 0, "goroutines per decision (default: all cores)")
+	asJSON := fs.Bool("json", false, "print one JSON object instead of the table")
+	if err := parse(fs, args); err != nil {
+		return err
+	}
+	m, err := sc.load()
+	if err != nil {
+		return err
+	}
+	ord, err := parseOrder(*order)
+	if err != nil {
+		return err
+	}
+	opts := compare.Options{
+		Episodes: *episodes, Seed: *seed, MaxJoint: *maxJoint, Order: ord, Now: time.Now,
+		Decide:   decide.Config{Samples: *samples, Horizon: *horizon, TerminalCost: *termCost, Workers: *workers},
+		Policies: strings.Split(*policies, ","),
+	}
+	if *horizon == 0 {
+		opts.Decide.Horizon = -1 // 0 means "first step only", not the default
+	}
+	// A bar only for a person watching a terminal, never into a pipe or file.
+	if term.IsTerminal(int(os.Stderr.Fd())) {
+		var bar *progressbar.ProgressBar
+		opts.Progress = func(done, total int) {
+			if bar == nil {
+				bar = progressbar.NewOptions(total, progressbar.OptionSetWriter(os.Stderr),
+					progressbar.OptionSetDescription("episodes"), progressbar.OptionClearOnFinish(),
+					progressbar.OptionShowCount())
+			}
+			_ = bar.Set(done)
+		}
+	}
+	rep, err := compare.Run(m, opts)
+	if err != nil {
+		return err
+	}
+	if *asJSON {
+		enc := json.NewEncoder(os.Stdout)
+		enc.SetIndent("", "  ")
+		return enc.Encode(rep)
+	}
+	rep.WriteTable(os.Stdout)
+	return nil
+}

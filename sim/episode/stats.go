@@ -1,0 +1,22 @@
+package episode
+
+import (
+	"math"
+
+	"gonum.org/v1/gonum/stat"
+	"gonum.org/v1/gonum/stat/distuv"
+)
+
+// MeanCI95 is the sample mean and the half-width of its 95% confidence
+// interval by Student's t with n-1 degrees of freedom (0 for n < 2).
+func MeanCI95(xs []float64) (mean, half float64) {
+	if len(xs) == 0 {
+		return math.NaN(), math.NaN()
+	}
+	mean, sd := stat.MeanStdDev(xs, nil)
+	if len(xs) < 2 {
+		return mean, 0
+	}
+	t := distuv.StudentsT{Mu: 0, Sigma: 1, Nu: float64(len(xs) - 1)}.Quantile(0.975)
+	return mean, t * sd / math.Sqrt(float64(len(xs)))
+}

@@ -1,0 +1,70 @@
+package main
+
+import (
+	"errors"
+	"flag"
+	"fmt"
+	"os"
+	"strconv"
+	"strings"
+
+	"baton/sim/model"
+	"baton/sim/scenarios"
+)
+
+// errUsage means the flag package already told the user what was wrong.
+var errUsage = errors.New("usage")
+
+func newFlags(name, synopsis string) *flag.FlagSet {
+	fs := flag.NewFlagSet("sim "+name, flag.ContinueOnError)
+	fs.Usage = func() {
+		fmt.Fprintf(fs.Output(), "usage: sim %s [flags]\n\n%s\n\nscenarios:\n%s\nflags:\n", name, synopsis, scenarios.Help())
+		fs.PrintDefaults()
+	}
+	return fs
+}
+
+func parse(fs *flag.FlagSet, args []string) error {
+	if err := fs.Parse(args); err != nil {
+		if errors.Is(err, flag.ErrHelp) {
+			os.Exit(0)
+		}
+		return errUsage
+	}
+	if fs.NArg() > 0 {
+		fmt.Fprintf(fs.Output(), "sim %s: unexpected argument %q\n", fs.Name(), fs.Arg(0))
+		return errUsage
+	}
+	return nil
+}
+
+type scenarioFlags struct {
+	name, file string
+	robots     int
+}
+
+func (s *scenarioFlags) register(fs *flag.FlagSet) {
+	fs.StringVar(&s.name, "scenario", "harbor", "scenario: "+strings.Join(scenarios.Names(), " or "))
+	fs.StringVar(&s.file, "config", "", "scenario YAML file (default: the scenario's built-in demo)")
+	fs.IntVar(&s.robots, "robots", 0, "number of robots (default: the file's or demo's own)")
+}
+
+func (s *scenarioFlags) load() (model.Model, error) {
+	return scenarios.Load(s.name, s.file, s.robots)
+}
+
+// parseOrder reads "2,0,1" into a turn order.
+func parseOrder(s string) ([]int, error) {
+	if s == "" {
+		return nil, nil
+	}
+	var out []int
+	for _, f := range strings.Split(s, ",") {
+		v, err := strconv.Atoi(strings.TrimSpace(f))
+		if err != nil {
+			return nil, fmt.Errorf("--order: %q is not a robot number", f)
+		}
+		out = append(out, v)
+	}
+	return out, nil
+}

@@ -1,0 +1,377 @@
+// Package harbor is the fully observed scenario: skimmer boats collect oil
+// slicks that drift on a W x H grid.
+//
+// One step, in this order:
+//  1. every boat moves one cell (N, S, E, W) or holds; a move off the grid
+//     leaves it where it is;
+//  2. every slick on a cell where a boat now is gets collected;
+//  3. the stage cost is the number of slicks still uncollected;
+//  4. each remaining slick drifts: with probability Drift it moves to a
+//     neighbouring cell, the direction drawn with weight 1 per direction
+//     plus CurrentBias for the current's direction; a drift off the grid
+//     leaves it in place.
+//
+// The episode ends when every slick is collected (cost-free absorbing state)
+// or after Horizon steps. By default all boats launch from one dock cell:
+// that is the usual site layout, and the case where boats that do not
+// coordinate all chase the same slick.
+package harbor
+
+import (
+	"fmt"
+	"math/rand/v2"
+	"slices"
+	"strings"
+
+	"baton/sim/model"
+)
+
+// Controls of every boat. Hold is 0, as model requires.
+const (
+	Hold = iota
+	North
+	South
+	East
+	West
+	numControls
+)
+
+var controlNames = [numControls]string{"hold", "N", "S", "E", "W"}
+
+// Direction deltas; y grows northwards.
+var dx = [numControls]int{0, 0, 0, 1, -1}
+var dy = [numControls]int{0, 1, -1, 0, 0}
+
+// Model is one configured harbor.
+type Model struct {
+	cfg     Config
+	w, h    int
+	drift   float64
+	cumDir  [4]float64 // cumulative direction weights N,S,E,W, normalised to 1
+	current int        // index into N,S,E,W of the current, or -1
+}
+
+// State is the harbor's full state.
+type State struct {
+	Boats  []int32 // cell of each boat (y*W + x)
+	Slicks []int32 // cell of each slick, -1 once collected
+	Left   int     // uncollected slicks
+}
+
+var _ model.Enumerable = (*Model)(nil)
+var _ model.TerminalCoster = (*Model)(nil)
+var _ model.ControlNamer = (*Model)(nil)
+
+// New builds a model from a validated configuration.
+func New(cfg Config) (*Model, error) {
+	if err := cfg.Validate(nil); err != nil {
+		return nil, err
+	}
+	return newModel(cfg), nil
+}
+
+func newModel(cfg Config) *Model {
+	m := &Model{cfg: cfg, w: cfg.Width, h: cfg.Height, drift: cfg.Drift, current: -1}
+	wts := [4]float64{1, 1, 1, 1}
+	if cfg.Current != "" {
+		m.current = strings.Index("NSEW", cfg.Current)
+		wts[m.current] += cfg.CurrentBias
+	}
+	sum := wts[0] + wts[1] + wts[2] + wts[3]
+	acc := 0.0
+	for i, w := range wts {
+		acc += w / sum
+		m.cumDir[i] = acc
+	}
+	m.cumDir[3] = 1
+	return m
+}
+
+// Config returns the configuration the model was built from.
+func (m *Model) Config() Config { return m.cfg }
+
+func (m *Model) Name() string      { return "harbor" }
+func (m *Model) Robots() int       { return m.cfg.Robots }
+func (m *Model) MaxControls() int  { return numControls }
+func (m *Model) Discount() float64 { return m.cfg.Discount }
+func (m *Model) Horizon() int      { return m.cfg.Horizon }
+func (m *Model) Width() int        { return m.w }
+func (m *Model) Height() int       { return m.h }
+
+// Cell is the index of (x, y).
+func (m *Model) Cell(x, y int) int32 { return int32(y*m.w + x) }
+
+// XY is the inverse of Cell.
+func (m *Model) XY(c int32) (x, y int) { return int(c) % m.w, int(c) / m.w }
+
+func (m *Model) NewState() model.State {
+	return &State{Boats: make([]int32, m.cfg.Robots), Slicks: make([]int32, m.cfg.Slicks)}
+}
+
+func (m *Model) CopyState(dst, src model.State) {
+	d, s := dst.(*State), src.(*State)
+	copy(d.Boats, s.Boats)
+	copy(d.Slicks, s.Slicks)
+	d.Left = s.Left
+}
+
+// Start places boats at the dock (or their configured or scattered cells)
+// and slicks at their configured cells or, when none are configured, at
+// random cells that hold no boat.
+func (m *Model) Start(dst model.State, rng *rand.Rand) {
+	s := dst.(*State)
+	cells := m.w * m.h
+	switch {
+	case len(m.cfg.Starts) > 0:
+		for i, p := range m.cfg.Starts {
+			s.Boats[i] = m.Cell(p[0], p[1])
+		}
+	case m.cfg.Scatter:
+		for i := range s.Boats {
+			s.Boats[i] = int32(rng.IntN(cells))
+		}
+	default:
+		for i := range s.Boats {
+			s.Boats[i] = m.Cell(m.cfg.Dock[0], m.cfg.Dock[1])
+		}
+	}
+	if len(m.cfg.SlickCells) > 0 {
+		for i, p := range m.cfg.SlickCells {
+			s.Slicks[i] = m.Cell(p[0], p[1])
+		}
+	} else {
+		for i := range s.Slicks {
+			for {
+				c := int32(rng.IntN(cells))
+				if !slices.Contains(s.Boats, c) {
+					s.Slicks[i] = c
+					break
+				}
+			}
+		}
+	}
+	s.Left = len(s.Slicks)
+	m.collect(s)
+}
+
+func (m *Model) NumControls(model.State, int) int { return numControls }
+
+func (m *Model) Terminal(st model.State) bool { return st.(*State).Left == 0 }
+
+// move returns the cell reached from c by control u (clamped to the grid).
+func (m *Model) move(c int32, u int) int32 {
+	x, y := int(c)%m.w+dx[u], int(c)/m.w+dy[u]
+	if x < 0 || x >= m.w || y < 0 || y >= m.h {
+		return c
+	}
+	return int32(y*m.w + x)
+}
+
+func (m *Model) collect(s *State) {
+	for i, c := range s.Slicks {
+		if c >= 0 && slices.Contains(s.Boats, c) {
+			s.Slicks[i] = -1
+			s.Left--
+		}
+	}
+}
+
+// Step draws exactly one uniform per slick (collected or not), in slick
+// order, so a given rng stream gives each slick the same drift whatever the
+// boats do: that is what makes common random numbers effective.
+func (m *Model) Step(st model.State, u []int, rng *rand.Rand) float64 {
+	s := st.(*State)
+	if s.Left == 0 {
+		return 0
+	}
+	for i, c := range s.Boats {
+		s.Boats[i] = m.move(c, u[i])
+	}
+	m.collect(s)
+	cost := float64(s.Left)
+	for i, c := range s.Slicks {
+		r := rng.Float64()
+		if c < 0 || r >= m.drift {
+			continue
+		}
+		s.Slicks[i] = m.move(c, m.direction(r/m.drift))
+	}
+	return cost
+}
+
+// direction maps a uniform in [0,1) to N, S, E or W by the current's weights.
+func (m *Model) direction(r float64) int {
+	for i, c := range m.cumDir {
+		if r < c {
+			return North + i
+		}
+	}
+	return West
+}
+
+func (m *Model) dist(a, b int32) int {
+	ax, ay := m.XY(a)
+	bx, by := m.XY(b)
+	return abs(ax-bx) + abs(ay-by)
+}
+
+func abs(v int) int {
+	if v < 0 {
+		return -v
+	}
+	return v
+}
+
+// Base heads for the nearest uncollected slick by Manhattan distance (ties:
+// the lower cell index), moving east/west first until the column matches,
+// then north/south. With no slick left it holds.
+func (m *Model) Base(st model.State, r int) int {
+	s := st.(*State)
+	b := s.Boats[r]
+	best, bestD := int32(-1), 1<<30
+	for _, c := range s.Slicks {
+		if c < 0 {
+			continue
+		}
+		if d := m.dist(b, c); d < bestD || (d == bestD && c < best) {
+			best, bestD = c, d
+		}
+	}
+	if best < 0 {
+		return Hold
+	}
+	bx, by := m.XY(b)
+	tx, ty := m.XY(best)
+	switch {
+	case tx > bx:
+		return East
+	case tx < bx:
+		return West
+	case ty > by:
+		return North
+	case ty < by:
+		return South
+	}
+	return Hold
+}
+
+// TerminalCost estimates the cost still to come where a rollout truncates:
+// each slick is assumed to wait as many steps as its nearest boat is away
+// (a heuristic: it ignores drift and boats serving several slicks).
+func (m *Model) TerminalCost(st model.State) float64 {
+	s := st.(*State)
+	total := 0
+	for _, c := range s.Slicks {
+		if c < 0 {
+			continue
+		}
+		d := 1 << 30
+		for _, b := range s.Boats {
+			d = min(d, m.dist(b, c))
+		}
+		total += d
+	}
+	return float64(total)
+}
+
+func (m *Model) ControlName(_ model.State, _ int, c int) string {
+	if c < 0 || c >= numControls {
+		return fmt.Sprintf("control-%d", c)
+	}
+	return controlNames[c]
+}
+
+// Key encodes boats in order and the uncollected slicks as a sorted multiset
+// (slicks are indistinguishable, which shrinks the exact state space).
+func (m *Model) Key(st model.State) string {
+	s := st.(*State)
+	buf := make([]byte, 0, 4*(len(s.Boats)+len(s.Slicks))+1)
+	for _, b := range s.Boats {
+		buf = append(buf, byte(b), byte(b>>8))
+	}
+	buf = append(buf, '|')
+	sl := make([]int32, 0, len(s.Slicks))
+	for _, c := range s.Slicks {
+		if c >= 0 {
+			sl = append(sl, c)
+		}
+	}
+	slices.Sort(sl)
+	for _, c := range sl {
+		buf = append(buf, byte(c), byte(c>>8))
+	}
+	return string(buf)
+}
+
+// Outcomes enumerates every combination of slick drifts.
+func (m *Model) Outcomes(st model.State, u []int, fn func(next model.State, p, cost float64)) {
+	s := st.(*State)
+	if s.Left == 0 {
+		return
+	}
+	next := m.NewState().(*State)
+	m.CopyState(next, s)
+	for i, c := range next.Boats {
+		next.Boats[i] = m.move(c, u[i])
+	}
+	m.collect(next)
+	cost := float64(next.Left)
+	probs := [4]float64{}
+	prev := 0.0
+	for i, c := range m.cumDir {
+		probs[i] = c - prev
+		prev = c
+	}
+	var rec func(i int, p float64)
+	rec = func(i int, p float64) {
+		if i == len(next.Slicks) {
+			fn(next, p, cost)
+			return
+		}
+		c := next.Slicks[i]
+		if c < 0 || m.drift == 0 {
+			rec(i+1, p)
+			return
+		}
+		// Moves that bump the edge merge into "stays".
+		stay := 1 - m.drift
+		for d := range 4 {
+			if m.move(c, North+d) == c {
+				stay += m.drift * probs[d]
+			}
+		}
+		rec(i+1, p*stay)
+		for d := range 4 {
+			if to := m.move(c, North+d); to != c {
+				next.Slicks[i] = to
+				rec(i+1, p*m.drift*probs[d])
+			}
+		}
+		next.Slicks[i] = c
+	}
+	rec(0, 1)
+}
+
+// Render draws the state as text: B boat, o slick, * both, . water.
+func (m *Model) Render(st model.State) string {
+	s := st.(*State)
+	var sb strings.Builder
+	for y := m.h - 1; y >= 0; y-- {
+		for x := 0; x < m.w; x++ {
+			c := m.Cell(x, y)
+			boat, slick := slices.Contains(s.Boats, c), slices.Contains(s.Slicks, c)
+			switch {
+			case boat && slick:
+				sb.WriteByte('*')
+			case boat:
+				sb.WriteByte('B')
+			case slick:
+				sb.WriteByte('o')
+			default:
+				sb.WriteByte('.')
+			}
+		}
+		sb.WriteByte('\n')
+	}
+	return sb.String()
+}

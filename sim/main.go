@@ -1,0 +1,54 @@
+// Command sim is Baton's simulator: it compares decision policies on seeded
+// episodes and solves tiny instances exactly.
+//
+//	sim compare --scenario harbor --robots 4 --episodes 30 --seed 7
+//	sim exact --scenario harbor --config tiny.yaml --json
+package main
+
+import (
+	"fmt"
+	"os"
+)
+
+const usage = `sim: Baton's fleet simulator
+
+usage: sim <command> [flags]
+
+commands:
+  compare   base vs all-at-once vs one-at-a-time rollout on seeded episodes
+  exact     exact costs of optimal, base and both rollouts on a tiny instance
+
+Run 'sim <command> -h' for a command's flags.
+`
+
+func main() {
+	os.Exit(run(os.Args[1:]))
+}
+
+func run(args []string) int {
+	if len(args) == 0 {
+		fmt.Fprint(os.Stderr, usage)
+		return 2
+	}
+	var err error
+	switch args[0] {
+	case "compare":
+		err = cmdCompare(args[1:])
+	case "exact":
+		err = cmdExact(args[1:])
+	case "-h", "-help", "--help", "help":
+		fmt.Print(usage)
+		return 0
+	default:
+		fmt.Fprintf(os.Stderr, "sim: unknown command %q\n\n%s", args[0], usage)
+		return 2
+	}
+	if err == errUsage {
+		return 2
+	}
+	if err != nil {
+		fmt.Fprintln(os.Stderr, "sim:", err)
+		return 1
+	}
+	return 0
+}

@@ -1,0 +1,149 @@
+package main
+
+import (
+	"encoding/json"
+	"os"
+	"os/exec"
+	"path/filepath"
+	"strings"
+	"testing"
+)
+
+var simBin string
+
+// The command is tested as a user runs it: a built binary, real files.
+func TestMain(m *testing.M) {
+	dir, err := os.MkdirTemp("", "sim-test")
+	if err != nil {
+		panic(err)
+	}
+	simBin = filepath.Join(dir, "sim")
+	if out, err := exec.Command("go", "build", "-o", simBin, ".").CombinedOutput(); err != nil {
+		panic("building sim: " + err.Error() + "\n" + string(out))
+	}
+	code := m.Run()
+	os.RemoveAll(dir)
+	os.Exit(code)
+}
+
+func runSim(t *testing.T, args ...string) (stdout, stderr string, code int) {
+	t.Helper()
+	cmd := exec.Command(simBin, args...)
+	var o, e strings.Builder
+	cmd.Stdout, cmd.Stderr = &o, &e
+	err := cmd.Run()
+	code = 0
+	if ee, ok := err.(*exec.ExitError); ok {
+		code = ee.ExitCode()
+	} else if err != nil {
+		t.Fatal(err)
+	}
+	return o.String(), e.String(), code
+}
+
+func TestCompareJSON(t *testing.T) {
+	out, errOut, code := runSim(t, "compare", "--scenario", "harbor", "--robots", "3", "--episodes", "3",
+		"--seed", "7", "--samples", "4", "--horizon", "8", "--json")
+	if code != 0 {
+		t.Fatalf("exit %d: %s", code, errOut)
+	}
+	if errOut != "" {
+		t.Errorf("no progress bar into a pipe, got stderr %q", errOut)
+	}
+	var rep struct {
+		Scenario string `json:"scenario"`
+		Robots   int    `json:"robots"`
+		Policies []struct {
+			Name  string   `json:"name"`
+			Mean  *float64 `json:"mean_cost"`
+			CI    *float64 `json:"ci95"`
+			Steps *float64 `json:"mean_steps"`
+			Q     *float64 `json:"qfactors_per_decision"`
+			Ms    *float64 `json:"ms_per_decision"`
+		} `json:"policies"`
+	}
+	if err := json.Unmarshal([]byte(out), &rep); err != nil {
+		t.Fatalf("not JSON: %v\n%s", err, out)
+	}
+	if rep.Scenario != "harbor" || rep.Robots != 3 || len(rep.Policies) != 3 {
+		t.Fatalf("unexpected report %s", out)
+	}
+	names := []string{"base", "all-at-once", "one-at-a-time"}
+	for i, p := range rep.Policies {
+		if p.Name != names[i] || p.Mean == nil || p.CI == nil || p.Steps == nil || p.Q == nil || p.Ms == nil {
+			t.Errorf("policy %d incomplete: %+v", i, p)
+		}
+	}
+}
+
+func TestCompareTable(t *testing.T) {
+	out, errOut, code := runSim(t, "compare", "--scenario", "upkeep", "--robots", "2", "--episodes", "2",
+		"--samples", "2", "--horizon", "4", "--policies", "base,one-at-a-time")
+	if code != 0 {
+		t.Fatalf("exit %d: %s", code, errOut)
+	}
+	for _, want := range []string{"upkeep, 2 robots, 2 episodes", "mean cost", "95% CI", "one-at-a-time"} {
+		if !strings.Contains(out, want) {
+			t.Errorf("table lacks %q:\n%s", want, out)
+		}
+	}
+}
+
+func TestExactJSON(t *testing.T) {
+	out, errOut, code := runSim(t, "exact", "--scenario", "harbor", "--config", "../deploy/examples/harbor-tiny.yaml", "--json")
+	if code != 0 {
+		t.Fatalf("exit %d: %s", code, errOut)
+	}
+	var r map[string]float64
+	if err := json.Unmarshal([]byte(out), &r); err != nil {
+		t.Fatalf("not JSON: %v\n%s", err, out)
+	}
+	// Optimal <= each rollout <= base: the cost improvement property
+	// (arXiv:1910.00120) and the definition of the optimum.
+	if !(r["optimal"] <= r["one_at_a_time"]+1e-9 && r["optimal"] <= r["all_at_once"]+1e-9 &&
+		r["one_at_a_time"] <= r["base"]+1e-9 && r["all_at_once"] <= r["base"]+1e-9 && r["states"] > 0) {
+		t.Fatalf("exact report out of order: %s", out)
+	}
+}
+
+func TestUserErrors(t *testing.T) {
+	dir := t.TempDir()
+	bad := filepath.Join(dir, "bad.yaml")
+	os.WriteFile(bad, []byte("width: 5\nheight: 5\ndock: [7, 1]\n"), 0o644)
+	big := filepath.Join(dir, "big.yaml")
+	os.WriteFile(big, []byte("width: 6\nheight: 6\nrobots: 3\nslicks: 3\ndiscount: 0.9\nslick_cells: [[5,5],[0,5],[5,0]]\n"), 0o644)
+	undiscounted := filepath.Join(dir, "undisc.yaml")
+	os.WriteFile(undiscounted, []byte("width: 2\nheight: 2\nrobots: 1\nslick_cells: [[1,1]]\n"), 0o644)
+	cases := []struct {
+		args []string
+		want string
+	}{
+		{[]string{"compare", "--scenario", "pond"}, `unknown scenario "pond" (known: harbor, upkeep)`},
+		{[]string{"compare", "--config", bad}, bad + ":3: dock: cell (7,1) is outside the 5 x 5 grid"},
+		{[]string{"compare", "--config", filepath.Join(dir, "missing.yaml")}, "missing.yaml: no such file"},
+		{[]string{"compare", "--episodes", "0"}, "--episodes must be at least 1"},
+		{[]string{"compare", "--order", "0,x"}, `--order: "x" is not a robot number`},
+		{[]string{"compare", "--bogus"}, "flag provided but not defined: -bogus"},
+		{[]string{"exact", "--scenario", "harbor"}, "--config FILE is required"},
+		{[]string{"exact", "--scenario", "harbor", "--config", big, "--max-states", "500"}, "more than 500 states"},
+		{[]string{"exact", "--scenario", "harbor", "--config", undiscounted}, "exact costs need a discount below 1"},
+		{[]string{"fly"}, `unknown command "fly"`},
+	}
+	for _, c := range cases {
+		_, errOut, code := runSim(t, c.args...)
+		if code == 0 || !strings.Contains(errOut, c.want) || strings.Contains(errOut, "panic") {
+			t.Errorf("sim %v: exit %d, stderr %q, want it to contain %q", c.args, code, errOut, c.want)
+		}
+	}
+}
+
+func TestHelp(t *testing.T) {
+	out, _, code := runSim(t, "help")
+	if code != 0 || !strings.Contains(out, "compare") || !strings.Contains(out, "exact") {
+		t.Fatalf("help: %d %q", code, out)
+	}
+	_, errOut, code := runSim(t, "compare", "-h")
+	if code != 0 || !strings.Contains(errOut, "--episodes") && !strings.Contains(errOut, "-episodes") {
+		t.Fatalf("compare -h: %d %q", code, errOut)
+	}
+}

@@ -1,0 +1,67 @@
+// Package scenarios maps scenario names to their loaders, so commands accept
+// --scenario NAME [--config FILE] for every scenario alike.
+package scenarios
+
+import (
+	"fmt"
+	"sort"
+	"strings"
+
+	"baton/sim/harbor"
+	"baton/sim/model"
+	"baton/sim/upkeep"
+)
+
+type loader struct {
+	def  func(robots int) (model.Model, error)
+	file func(path string, robots int) (model.Model, error)
+	help string
+}
+
+var registry = map[string]loader{
+	"harbor": {
+		def:  func(r int) (model.Model, error) { return harbor.Default(r) },
+		file: func(p string, r int) (model.Model, error) { return harbor.Load(p, r) },
+		help: "skimmer boats collect drifting slicks on a grid (full state)",
+	},
+	"upkeep": {
+		def:  func(r int) (model.Model, error) { return upkeep.Default(r) },
+		file: func(p string, r int) (model.Model, error) { return upkeep.Load(p, r) },
+		help: "robots service a solar park's sites with hidden wear (belief state)",
+	},
+}
+
+// Names lists the known scenarios.
+func Names() []string {
+	var n []string
+	for k := range registry {
+		n = append(n, k)
+	}
+	sort.Strings(n)
+	return n
+}
+
+// Help is a one-line description per scenario.
+func Help() string {
+	var sb strings.Builder
+	for _, n := range Names() {
+		fmt.Fprintf(&sb, "  %-8s %s\n", n, registry[n].help)
+	}
+	return sb.String()
+}
+
+// Load builds scenario name from file (empty: the built-in demo) with the
+// given robot count (0: the file's or the demo's own).
+func Load(name, file string, robots int) (model.Model, error) {
+	l, ok := registry[name]
+	if !ok {
+		return nil, fmt.Errorf("unknown scenario %q (known: %s)", name, strings.Join(Names(), ", "))
+	}
+	if robots < 0 {
+		return nil, fmt.Errorf("--robots must be positive, got %d", robots)
+	}
+	if file == "" {
+		return l.def(robots)
+	}
+	return l.file(file, robots)
+}
