@@ -90,7 +90,13 @@ func TestCompareTable(t *testing.T) {
 }
 
 func TestExactJSON(t *testing.T) {
-	out, errOut, code := runSim(t, "exact", "--scenario", "harbor", "--config", "../deploy/examples/harbor-tiny.yaml", "--json")
+	for _, sc := range []string{"harbor", "upkeep"} {
+		checkExact(t, sc)
+	}
+}
+
+func checkExact(t *testing.T, scenario string) {
+	out, errOut, code := runSim(t, "exact", "--scenario", scenario, "--config", "../deploy/examples/"+scenario+"-tiny.yaml", "--json")
 	if code != 0 {
 		t.Fatalf("exit %d: %s", code, errOut)
 	}
