@@ -174,19 +174,26 @@ func RandomTiny(seed uint64) *Model {
 				c.Starts = append(c.Starts, [2]int{rng.IntN(c.Width), rng.IntN(c.Height)})
 			}
 		}
-		// Slicks start away from the boats, so no instance is finished at the start.
+		// Slicks start at least two steps from every boat, so no instance is
+		// over after its first step and the checks have something to check.
 		boats := c.Starts
 		if len(boats) == 0 {
 			boats = [][2]int{c.Dock}
 		}
-		if len(boats) >= cells {
+		var far [][2]int
+		for x := range c.Width {
+			for y := range c.Height {
+				p := [2]int{x, y}
+				if !slices.ContainsFunc(boats, func(b [2]int) bool { return abs(b[0]-p[0])+abs(b[1]-p[1]) < 2 }) {
+					far = append(far, p)
+				}
+			}
+		}
+		if len(far) == 0 {
 			continue
 		}
-		for len(c.SlickCells) < c.Slicks {
-			p := [2]int{rng.IntN(c.Width), rng.IntN(c.Height)}
-			if !slices.Contains(boats, p) {
-				c.SlickCells = append(c.SlickCells, p)
-			}
+		for range c.Slicks {
+			c.SlickCells = append(c.SlickCells, far[rng.IntN(len(far))])
 		}
 		m, err := New(c)
 		if err != nil {
