@@ -8,6 +8,9 @@ package main
 import (
 	"fmt"
 	"os"
+
+	"baton/agentd/daemon"
+	"baton/coordinator/server"
 )
 
 const usage = `sim: Baton's fleet simulator
@@ -17,6 +20,8 @@ usage: sim <command> [flags]
 commands:
   compare   base vs all-at-once vs one-at-a-time rollout on seeded episodes
   exact     exact costs of optimal, base and both rollouts on a tiny instance
+  fleet     a whole fleet on this machine: embedded NATS, coordinator, one agentd per robot
+  agentd, coordinator   the daemons themselves (as ./agentd and ./coordinator)
 
 Run 'sim <command> -h' for a command's flags.
 `
@@ -36,6 +41,14 @@ func run(args []string) int {
 		err = cmdCompare(args[1:])
 	case "exact":
 		err = cmdExact(args[1:])
+	case "fleet":
+		err = cmdFleet(args[1:])
+	case "agentd":
+		// The same daemon as ./agentd, so `sim fleet` can start real
+		// processes from this one binary.
+		return daemon.Main(args[1:])
+	case "coordinator":
+		return server.Main(args[1:])
 	case "-h", "-help", "--help", "help":
 		fmt.Print(usage)
 		return 0

@@ -176,7 +176,8 @@ func (m *Model) collect(s *State) {
 	}
 }
 
-// Step draws exactly one uniform per slick (collected or not), in slick
+// Step is steps 1-3 (advance, shared with Advance) followed by the drift.
+// It draws exactly one uniform per slick (collected or not), in slick
 // order, so a given rng stream gives each slick the same drift whatever the
 // boats do: that is what makes common random numbers effective.
 func (m *Model) Step(st model.State, u []int, rng *rand.Rand) float64 {
@@ -184,11 +185,7 @@ func (m *Model) Step(st model.State, u []int, rng *rand.Rand) float64 {
 	if s.Left == 0 {
 		return 0
 	}
-	for i, c := range s.Boats {
-		s.Boats[i] = m.move(c, u[i])
-	}
-	m.collect(s)
-	cost := float64(s.Left)
+	cost := m.advance(s, u)
 	for i, c := range s.Slicks {
 		r := rng.Float64()
 		if c < 0 || r >= m.drift {
@@ -311,11 +308,7 @@ func (m *Model) Outcomes(st model.State, u []int, fn func(next model.State, p, c
 	}
 	next := m.NewState().(*State)
 	m.CopyState(next, s)
-	for i, c := range next.Boats {
-		next.Boats[i] = m.move(c, u[i])
-	}
-	m.collect(next)
-	cost := float64(next.Left)
+	cost := m.advance(next, u)
 	probs := [4]float64{}
 	prev := 0.0
 	for i, c := range m.cumDir {

@@ -258,7 +258,15 @@ func checkChain(doc *config.Doc, at string, rows [][]float64, k int) ([]float64,
 		if math.Abs(sum-1) > rowTolerance {
 			return nil, doc.Errorf(ri, "row sums to %.12g, want 1", sum)
 		}
-		c = append(c, row...)
+		// Rescale so beliefs keep summing to 1 over long runs: a row that is
+		// off by 1e-10 would otherwise leak that much probability per step.
+		// Rows already exact to rounding are kept as written.
+		if math.Abs(sum-1) <= 1e-15 {
+			sum = 1
+		}
+		for _, v := range row {
+			c = append(c, v/sum)
+		}
 	}
 	return c, nil
 }

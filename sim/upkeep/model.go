@@ -479,8 +479,8 @@ func (m *Model) Transition(site, from, to int) float64 {
 // ObserveAll reports whether every site is observed every step.
 func (m *Model) ObserveAll() bool { return m.observeAll }
 
-// Position is robot r's site in s.
-func (m *Model) Position(s model.State, r int) int { return s.(*State).pos[r] }
+// Position is robot r's site in s (int32, as model.Fleet has it on the wire).
+func (m *Model) Position(s model.State, r int) int32 { return int32(s.(*State).pos[r]) }
 
 // Positions is the robots' sites in s; it aliases s, do not modify it.
 func (m *Model) Positions(s model.State) []int { return s.(*State).pos }

@@ -1,0 +1,156 @@
+// Package daemon is agentd's command line: flags, NATS, gossip, the local
+// HTTP interface, signals. agentd's main calls Main; so does `sim agentd`,
+// which is how the simulator starts real daemons as separate processes
+// without a separate build step.
+package daemon
+
+import (
+	"context"
+	"errors"
+	"flag"
+	"fmt"
+	"net"
+	"net/http"
+	"os"
+	"os/signal"
+	"strings"
+	"syscall"
+	"time"
+
+	"github.com/prometheus/client_golang/prometheus"
+	"github.com/prometheus/client_golang/prometheus/collectors"
+	"go.uber.org/zap"
+
+	"baton/agentd/node"
+	"baton/deploy/shell"
+	pb "baton/proto"
+	bsignal "baton/signal"
+	"baton/sim/model"
+	"baton/sim/scenarios"
+)
+
+const synopsis = `agentd: one robot's Baton daemon.
+
+It joins the fleet's gossip, takes its turn in every round (waiting for its
+predecessors' decisions up to the turn deadline, guessing the rest), and
+serves the robot's own software on a local HTTP interface:
+
+  GET  /v1/decision?round=N&wait=2s[&closed=1]   this robot's decision; hold:true when it has none
+  POST /v1/observation   {"round":N,"position":P,"applied":C,"seen":[{"what":i,"value":v}]}
+  GET  /healthz, GET /metrics
+
+usage: agentd --robot N --nats URL [flags]
+`
+
+// Main runs agentd with args and returns the exit code.
+func Main(args []string) int {
+	fs := flag.NewFlagSet("agentd", flag.ContinueOnError)
+	robot := fs.Int("robot", -1, "this robot's id, 0..robots-1 (required)")
+	natsURL := fs.String("nats", "nats://127.0.0.1:4222", "NATS server URL list, comma-separated")
+	creds := fs.String("creds", "", "NATS credentials file")
+	fleet := fs.String("fleet", "demo", "fleet id")
+	prefix := fs.String("prefix", "baton", "NATS subject prefix")
+	scenario := fs.String("scenario", "harbor", "scenario: "+strings.Join(scenarios.Names(), " or "))
+	file := fs.String("config", "", "scenario YAML file (default: the built-in demo); must match the coordinator's")
+	robots := fs.Int("robots", 0, "fleet size (default: the file's or demo's own)")
+	httpAddr := fs.String("http", "127.0.0.1:7400", "local interface for the robot's software (localhost only by default)")
+	gossip := fs.String("gossip", "127.0.0.1:0", "gossip bind host:port (port 0 picks one)")
+	join := fs.String("join", "", "gossip address(es) of the coordinator or any member, comma-separated")
+	guess := fs.String("guess", "base", "guess source for missing predecessors: "+strings.Join(bsignal.Names(), ", "))
+	delay := fs.Duration("inject-delay", 0, "fault injection: hold back this robot's decisions by this long")
+	stale := fs.Duration("stale", 10*time.Second, "hold when no round has started for this long")
+	connectTimeout := fs.Duration("connect-timeout", 30*time.Second, "keep retrying an unreachable NATS server this long")
+	logLevel := fs.String("log-level", "info", "debug, info, warn or error")
+	logJSON := fs.Bool("log-json", false, "log JSON lines")
+	fs.Usage = func() {
+		fmt.Fprint(fs.Output(), synopsis+"\nflags:\n")
+		fs.PrintDefaults()
+	}
+	if err := fs.Parse(args); err != nil {
+		if errors.Is(err, flag.ErrHelp) {
+			return 0
+		}
+		return 2
+	}
+	lg, err := shell.Logger(*logLevel, *logJSON, fmt.Sprintf("agentd-%d", *robot))
+	if err != nil {
+		fmt.Fprintln(os.Stderr, "agentd:", err)
+		return 2
+	}
+	defer lg.Sync()
+	fail := func(err error) int {
+		lg.Error("agentd cannot start", zap.Error(err))
+		fmt.Fprintln(os.Stderr, "agentd:", err)
+		return 1
+	}
+	m, err := scenarios.Load(*scenario, *file, *robots)
+	if err != nil {
+		return fail(err)
+	}
+	fm, ok := m.(model.Fleet)
+	if !ok {
+		return fail(fmt.Errorf("scenario %s cannot run as a fleet", m.Name()))
+	}
+	if *robot < 0 || *robot >= m.Robots() {
+		return fail(fmt.Errorf("--robot %d: this fleet has robots 0..%d", *robot, m.Robots()-1))
+	}
+	subj, err := pb.NewSubjects(*prefix, *fleet)
+	if err != nil {
+		return fail(err)
+	}
+	digest, err := shell.Digest(*scenario, *file, m.Robots())
+	if err != nil {
+		return fail(err)
+	}
+	src, err := bsignal.New(*guess, m)
+	if err != nil {
+		return fail(err)
+	}
+	ln, err := net.Listen("tcp", *httpAddr)
+	if err != nil {
+		return fail(fmt.Errorf("--http %s: %w", *httpAddr, err))
+	}
+	sender := fmt.Sprintf("robot-%d@%d", *robot, os.Getpid())
+	nc, err := shell.Connect(*natsURL, *creds, sender, *connectTimeout, lg)
+	if err != nil {
+		return fail(err)
+	}
+	defer nc.Close()
+	var joinList []string
+	if *join != "" {
+		joinList = strings.Split(*join, ",")
+	}
+	ml, err := shell.Gossip(shell.RobotMember(*fleet, *robot), *gossip, joinList, lg)
+	if err != nil {
+		return fail(err)
+	}
+	defer func() {
+		_ = ml.Leave(time.Second)
+		_ = ml.Shutdown()
+	}()
+
+	reg := prometheus.NewRegistry()
+	reg.MustRegister(collectors.NewGoCollector(), collectors.NewProcessCollector(collectors.ProcessCollectorOpts{}))
+	n := node.New(node.Config{Fleet: *fleet, Subjects: subj, Robot: *robot, Sender: sender, Model: fm, Digest: digest,
+		Guess: src, InjectDelay: *delay, Stale: *stale, Log: lg, Metrics: node.NewMetrics(reg)}, nc)
+	ctx, stop := signal.NotifyContext(context.Background(), os.Interrupt, syscall.SIGTERM)
+	defer stop()
+	srv := &http.Server{Handler: n.Handler(reg), ReadHeaderTimeout: 5 * time.Second}
+	go func() {
+		if err := srv.Serve(ln); err != nil && !errors.Is(err, http.ErrServerClosed) {
+			lg.Error("local interface stopped", zap.Error(err))
+			stop()
+		}
+	}()
+	lg.Info("agentd up", zap.Int("robot", *robot), zap.String("fleet", *fleet), zap.String("scenario", m.Name()),
+		zap.String("http", ln.Addr().String()), zap.String("nats", nc.ConnectedUrl()), zap.String("digest", digest))
+	err = n.Run(ctx)
+	sctx, cancel := context.WithTimeout(context.Background(), 2*time.Second)
+	defer cancel()
+	_ = srv.Shutdown(sctx)
+	if err != nil {
+		return fail(err)
+	}
+	lg.Info("agentd stopped")
+	return 0
+}

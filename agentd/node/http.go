@@ -1,0 +1,96 @@
+package node
+
+import (
+	"encoding/json"
+	"errors"
+	"fmt"
+	"io"
+	"net/http"
+	"strconv"
+	"time"
+
+	"github.com/prometheus/client_golang/prometheus"
+	"github.com/prometheus/client_golang/prometheus/promhttp"
+)
+
+// Handler serves the robot's local interface:
+//
+//	GET  /v1/decision?round=N&wait=2s&closed=1   this robot's decision (hold when none)
+//	POST /v1/observation                         {"round":N,"position":P,"applied":C,"seen":[{"what":i,"value":v}]}
+//	GET  /healthz                                200 when connected to NATS
+//	GET  /metrics                                Prometheus
+func (n *Node) Handler(reg prometheus.Gatherer) http.Handler {
+	mux := http.NewServeMux()
+	mux.HandleFunc("GET /v1/decision", n.serveDecision)
+	mux.HandleFunc("POST /v1/observation", n.serveObservation)
+	mux.HandleFunc("GET /healthz", func(w http.ResponseWriter, r *http.Request) {
+		if !n.nc.IsConnected() {
+			http.Error(w, "not connected to NATS: "+n.nc.Status().String(), http.StatusServiceUnavailable)
+			return
+		}
+		fmt.Fprintf(w, "ok robot %d fleet %s round %d\n", n.cfg.Robot, n.cfg.Fleet, n.latestRound())
+	})
+	if reg != nil {
+		mux.Handle("GET /metrics", promhttp.HandlerFor(reg, promhttp.HandlerOpts{}))
+	}
+	return mux
+}
+
+func (n *Node) latestRound() uint64 {
+	n.mu.Lock()
+	defer n.mu.Unlock()
+	return n.latest
+}
+
+func httpError(w http.ResponseWriter, code int, msg string) {
+	w.Header().Set("Content-Type", "application/json")
+	w.WriteHeader(code)
+	json.NewEncoder(w).Encode(map[string]string{"error": msg})
+}
+
+func (n *Node) serveDecision(w http.ResponseWriter, r *http.Request) {
+	q := r.URL.Query()
+	var round uint64
+	if s := q.Get("round"); s != "" {
+		v, err := strconv.ParseUint(s, 10, 64)
+		if err != nil {
+			httpError(w, http.StatusBadRequest, fmt.Sprintf("round=%q is not a round number", s))
+			return
+		}
+		round = v
+	}
+	wait := time.Duration(0)
+	if s := q.Get("wait"); s != "" {
+		d, err := time.ParseDuration(s)
+		if err != nil || d < 0 || d > time.Minute {
+			httpError(w, http.StatusBadRequest, fmt.Sprintf("wait=%q: give a duration up to 1m, e.g. 2s", s))
+			return
+		}
+		wait = d
+	}
+	closed := q.Get("closed") == "1" || q.Get("closed") == "true"
+	v := n.Decision(r.Context(), round, wait, closed)
+	w.Header().Set("Content-Type", "application/json")
+	json.NewEncoder(w).Encode(v)
+}
+
+func (n *Node) serveObservation(w http.ResponseWriter, r *http.Request) {
+	var rep Report
+	dec := json.NewDecoder(io.LimitReader(r.Body, 1<<20))
+	dec.DisallowUnknownFields()
+	if err := dec.Decode(&rep); err != nil {
+		httpError(w, http.StatusBadRequest, "observation is not valid JSON: "+err.Error())
+		return
+	}
+	if err := n.Observe(rep); err != nil {
+		code := http.StatusServiceUnavailable
+		if errors.Is(err, ErrBadReport) {
+			code = http.StatusBadRequest
+		}
+		httpError(w, code, err.Error())
+		return
+	}
+	w.Header().Set("Content-Type", "application/json")
+	w.WriteHeader(http.StatusAccepted)
+	fmt.Fprintln(w, `{"ok":true}`)
+}

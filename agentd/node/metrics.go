@@ -1,0 +1,41 @@
+package node
+
+import "github.com/prometheus/client_golang/prometheus"
+
+// Metrics are the daemon's Prometheus series.
+type Metrics struct {
+	TurnLatency *prometheus.HistogramVec
+	Compute     prometheus.Histogram
+	Turns       *prometheus.CounterVec
+	Dropped     *prometheus.CounterVec
+	Late        prometheus.Counter
+	Rounds      prometheus.Counter
+	Hop         prometheus.Gauge
+}
+
+// NewMetrics registers the series on reg (nil: a fresh registry).
+func NewMetrics(reg prometheus.Registerer) *Metrics {
+	m := &Metrics{
+		TurnLatency: prometheus.NewHistogramVec(prometheus.HistogramOpts{
+			Name: "baton_turn_latency_seconds", Help: "From receiving a round start to publishing this robot's decision.",
+			Buckets: prometheus.ExponentialBuckets(0.0001, 2, 18)}, []string{"mode"}),
+		Compute: prometheus.NewHistogram(prometheus.HistogramOpts{
+			Name: "baton_compute_seconds", Help: "Rollout compute per turn.",
+			Buckets: prometheus.ExponentialBuckets(0.0001, 2, 18)}),
+		Turns: prometheus.NewCounterVec(prometheus.CounterOpts{
+			Name: "baton_turns_total", Help: "Turns decided, by whether any predecessor was guessed."}, []string{"guessed"}),
+		Dropped: prometheus.NewCounterVec(prometheus.CounterOpts{
+			Name: "baton_messages_dropped_total", Help: "Messages dropped unread, by reason."}, []string{"reason"}),
+		Late: prometheus.NewCounter(prometheus.CounterOpts{
+			Name: "baton_decisions_late_total", Help: "Predecessor decisions that arrived after this robot had decided."}),
+		Rounds: prometheus.NewCounter(prometheus.CounterOpts{
+			Name: "baton_rounds_total", Help: "Rounds started."}),
+		Hop: prometheus.NewGauge(prometheus.GaugeOpts{
+			Name: "baton_hop_seconds", Help: "Latest one-way hop to the NATS server (RTT/2)."}),
+	}
+	if reg == nil {
+		reg = prometheus.NewRegistry()
+	}
+	reg.MustRegister(m.TurnLatency, m.Compute, m.Turns, m.Dropped, m.Late, m.Rounds, m.Hop)
+	return m
+}

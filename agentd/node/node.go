@@ -1,0 +1,512 @@
+package node
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"slices"
+	"sync"
+	"sync/atomic"
+	"time"
+
+	"github.com/nats-io/nats.go"
+	"go.uber.org/zap"
+	"google.golang.org/protobuf/proto"
+
+	"baton/agentd/decide"
+	"baton/agentd/turn"
+	pb "baton/proto"
+	"baton/signal"
+	"baton/sim/model"
+)
+
+// Computer runs one robot's rollout turn. The default is decide.Decider;
+// benchmarks swap in a stub of fixed cost.
+type Computer interface {
+	Turn(x model.State, r int, known []int, seed uint64, p *pb.DecideParams) int
+}
+
+// Rollout is the real Computer: one Decider, rebuilt when the fleet's
+// parameters change, used by one turn at a time.
+type Rollout struct {
+	M model.Model
+
+	mu     sync.Mutex
+	d      *decide.Decider
+	params decide.Config
+}
+
+func (r *Rollout) Turn(x model.State, robot int, known []int, seed uint64, p *pb.DecideParams) int {
+	r.mu.Lock()
+	defer r.mu.Unlock()
+	cfg := decide.Config{Samples: int(p.GetSamples()), Horizon: int(p.GetHorizon()), TerminalCost: p.GetTerminalCost()}
+	if r.d == nil || cfg != r.params {
+		r.d, r.params = decide.New(r.M, cfg), cfg
+	}
+	c, _ := r.d.Turn(x, robot, known, seed)
+	return c
+}
+
+// Config of one robot's daemon.
+type Config struct {
+	Fleet    string
+	Subjects pb.Subjects
+	Robot    int
+	Sender   string
+	Model    model.Fleet
+	// Digest of the scenario file; rounds with another digest are refused.
+	Digest string
+	// Compute is nil for the real rollout.
+	Compute Computer
+	// Guess fills in predecessors that did not arrive in time (nil: base).
+	Guess signal.Source
+	// InjectDelay holds back this robot's own decision publishes: fault
+	// injection in our own message layer, for drills and tests.
+	InjectDelay time.Duration
+	// Stale: with no round start for this long the robot holds.
+	Stale   time.Duration
+	Log     *zap.Logger
+	Metrics *Metrics
+}
+
+// View is what the robot's own software sees of a round.
+type View struct {
+	Round   uint64   `json:"round"`
+	Control int      `json:"control"`
+	Action  string   `json:"action"`
+	Hold    bool     `json:"hold"`
+	Reason  string   `json:"reason,omitempty"`
+	Heard   []uint32 `json:"heard"`
+	Guessed []uint32 `json:"guessed"`
+	Decided bool     `json:"decided"`
+	Closed  bool     `json:"closed"`
+	// RoundLatencyUs is the coordinator's measure of the whole round, once closed.
+	RoundLatencyUs uint64 `json:"round_latency_us,omitempty"`
+	SitOut         bool   `json:"-"`
+}
+
+// Node is one running daemon.
+type Node struct {
+	cfg     Config
+	nc      *nats.Conn
+	machine *turn.Machine
+	epoch   time.Time
+	events  chan any
+	hop     atomic.Int64 // ns
+
+	// Event-loop state.
+	x         model.State
+	params    *pb.DecideParams
+	roundAt   time.Duration
+	mode      turn.Mode
+	pending   map[uint64]pending
+	lateSeen  uint64
+	loggedBad map[string]bool
+
+	mu        sync.Mutex
+	views     map[uint64]*View
+	latest    uint64
+	lastStart time.Time
+	changed   chan struct{}
+	state     model.State // last round's state, for checking reports
+}
+
+type pending struct {
+	x      model.State
+	params *pb.DecideParams
+}
+
+type roundMsg struct {
+	at   time.Duration
+	data []byte
+}
+type closeMsg struct{ data []byte }
+
+// New prepares a node on an open connection.
+func New(cfg Config, nc *nats.Conn) *Node {
+	if cfg.Compute == nil {
+		cfg.Compute = &Rollout{M: cfg.Model}
+	}
+	if cfg.Guess == nil {
+		cfg.Guess = signal.Base{M: cfg.Model}
+	}
+	if cfg.Stale <= 0 {
+		cfg.Stale = 10 * time.Second
+	}
+	if cfg.Log == nil {
+		cfg.Log = zap.NewNop()
+	}
+	if cfg.Metrics == nil {
+		cfg.Metrics = NewMetrics(nil)
+	}
+	return &Node{
+		cfg: cfg, nc: nc, epoch: time.Now(), events: make(chan any, 4096),
+		machine:   turn.New(turn.Config{Fleet: cfg.Fleet, Robot: cfg.Robot, Robots: cfg.Model.Robots(), Sender: cfg.Sender}),
+		pending:   map[uint64]pending{},
+		loggedBad: map[string]bool{},
+		views:     map[uint64]*View{},
+		changed:   make(chan struct{}),
+	}
+}
+
+func (n *Node) now() time.Duration { return time.Since(n.epoch) }
+
+// Run subscribes and serves events until ctx ends.
+func (n *Node) Run(ctx context.Context) error {
+	s := n.cfg.Subjects
+	subs := []struct {
+		subj string
+		fn   nats.MsgHandler
+	}{
+		{s.Round, func(m *nats.Msg) { n.events <- roundMsg{at: n.now(), data: m.Data} }},
+		{s.Decision, func(m *nats.Msg) { n.events <- turn.Heard{Now: n.now(), Data: m.Data} }},
+		{s.Close, func(m *nats.Msg) { n.events <- closeMsg{data: m.Data} }},
+	}
+	for _, sub := range subs {
+		ss, err := n.nc.Subscribe(sub.subj, sub.fn)
+		if err != nil {
+			return fmt.Errorf("subscribe %s: %w", sub.subj, err)
+		}
+		_ = ss.SetPendingLimits(-1, -1)
+		defer ss.Unsubscribe()
+	}
+	if err := n.nc.Flush(); err != nil {
+		return fmt.Errorf("nats flush: %w", err)
+	}
+	go n.measureHop(ctx)
+	for {
+		select {
+		case <-ctx.Done():
+			return nil
+		case ev := <-n.events:
+			n.handle(ev)
+		}
+	}
+}
+
+func (n *Node) measureHop(ctx context.Context) {
+	t := time.NewTicker(time.Second)
+	defer t.Stop()
+	for {
+		if rtt, err := n.nc.RTT(); err == nil {
+			n.hop.Store(int64(rtt / 2))
+			n.cfg.Metrics.Hop.Set((rtt / 2).Seconds())
+		}
+		select {
+		case <-ctx.Done():
+			return
+		case <-t.C:
+		}
+	}
+}
+
+func (n *Node) handle(ev any) {
+	switch ev := ev.(type) {
+	case roundMsg:
+		n.onRound(ev)
+	case closeMsg:
+		n.onClose(ev.data)
+	case turn.Event:
+		n.apply(n.machine.Step(ev))
+	}
+}
+
+func (n *Node) drop(reason turn.DropReason, sender, detail string) {
+	n.apply([]turn.Action{turn.Drop{Reason: reason, Sender: sender, Detail: detail}})
+}
+
+func (n *Node) onRound(ev roundMsg) {
+	var rs pb.RoundStart
+	if err := proto.Unmarshal(ev.data, &rs); err != nil {
+		n.drop(turn.DropMalformed, "", "round start: "+err.Error())
+		return
+	}
+	if rs.GetFleet() != n.cfg.Fleet {
+		n.drop(turn.DropForeign, rs.GetSender(), fmt.Sprintf("round start for fleet %q, this is %q", rs.GetFleet(), n.cfg.Fleet))
+		return
+	}
+	if n.cfg.Digest != "" && rs.GetScenarioDigest() != n.cfg.Digest {
+		n.drop(turn.DropForeign, rs.GetSender(), fmt.Sprintf("round %d was started on scenario digest %s, this robot runs %s: start both with the same scenario file",
+			rs.GetRound(), rs.GetScenarioDigest(), n.cfg.Digest))
+		return
+	}
+	m := n.cfg.Model
+	x := m.NewState()
+	if rs.GetState().GetScenario() != m.Name() {
+		n.drop(turn.DropMalformed, rs.GetSender(), fmt.Sprintf("round %d: snapshot of scenario %q, this robot runs %q", rs.GetRound(), rs.GetState().GetScenario(), m.Name()))
+		return
+	}
+	if err := m.Unflatten(x, rs.GetState().GetInts(), rs.GetState().GetReals()); err != nil {
+		n.drop(turn.DropMalformed, rs.GetSender(), fmt.Sprintf("round %d: %v", rs.GetRound(), err))
+		return
+	}
+	mode := turn.Mode(rs.GetMode())
+	order := make([]int, len(rs.GetOrder()))
+	for i, r := range rs.GetOrder() {
+		order[i] = int(r)
+	}
+	deadlines := make([]time.Duration, len(rs.GetDeadlinesUs()))
+	for i, d := range rs.GetDeadlinesUs() {
+		deadlines[i] = time.Duration(d) * time.Microsecond
+	}
+	controls := make([]int, m.Robots())
+	for j := range controls {
+		controls[j] = m.NumControls(x, j)
+	}
+	before := n.machine.Round()
+	n.pending[rs.GetRound()] = pending{x: x, params: rs.GetParams()}
+	acts := n.machine.Step(turn.Round{Now: ev.at, Round: rs.GetRound(), Order: order, Deadlines: deadlines, Mode: mode, Controls: controls})
+	if r := n.machine.Round(); r != before && r == rs.GetRound() {
+		p := n.pending[r]
+		n.x, n.params, n.roundAt, n.mode = p.x, p.params, ev.at, mode
+		n.cfg.Metrics.Rounds.Inc()
+		in := slices.Contains(order, n.cfg.Robot)
+		n.mu.Lock()
+		n.latest, n.lastStart, n.state = r, time.Now(), x
+		v := n.view(r)
+		if !in {
+			v.SitOut, v.Hold, v.Reason = true, true, "not in this round's order"
+		}
+		for k := range n.views {
+			if k+64 < r {
+				delete(n.views, k)
+			}
+		}
+		n.notify()
+		n.mu.Unlock()
+	}
+	clear(n.pending)
+	n.apply(acts)
+}
+
+func (n *Node) onClose(data []byte) {
+	var rc pb.RoundClose
+	if err := proto.Unmarshal(data, &rc); err != nil {
+		n.drop(turn.DropMalformed, "", "round close: "+err.Error())
+		return
+	}
+	if rc.GetFleet() != n.cfg.Fleet {
+		n.drop(turn.DropForeign, rc.GetSender(), fmt.Sprintf("round close for fleet %q", rc.GetFleet()))
+		return
+	}
+	if len(rc.GetControls()) != n.cfg.Model.Robots() {
+		n.drop(turn.DropMalformed, rc.GetSender(), fmt.Sprintf("round close with %d controls for %d robots", len(rc.GetControls()), n.cfg.Model.Robots()))
+		return
+	}
+	n.mu.Lock()
+	defer n.mu.Unlock()
+	v := n.view(rc.GetRound())
+	v.Closed = true
+	v.RoundLatencyUs = rc.GetLatencyUs()
+	v.Control = int(rc.GetControls()[n.cfg.Robot])
+	if slices.Contains(rc.GetHeld(), uint32(n.cfg.Robot)) {
+		v.Control, v.Hold = 0, true
+		if v.Reason == "" {
+			v.Reason = "round closed without this robot's decision"
+		}
+	}
+	v.Action = n.controlName(v.Control)
+	n.notify()
+}
+
+// view returns the round's view, making it; n.mu is held.
+func (n *Node) view(r uint64) *View {
+	v, ok := n.views[r]
+	if !ok {
+		v = &View{Round: r, Action: n.controlName(0), Heard: []uint32{}, Guessed: []uint32{}}
+		n.views[r] = v
+	}
+	return v
+}
+
+func (n *Node) controlName(c int) string {
+	if cn, ok := n.cfg.Model.(model.ControlNamer); ok && n.x != nil {
+		return cn.ControlName(n.x, n.cfg.Robot, c)
+	}
+	return fmt.Sprintf("control-%d", c)
+}
+
+// notify wakes long-polling readers; n.mu is held.
+func (n *Node) notify() {
+	close(n.changed)
+	n.changed = make(chan struct{})
+}
+
+func (n *Node) apply(acts []turn.Action) {
+	for _, a := range acts {
+		switch a := a.(type) {
+		case turn.Arm:
+			d := a.At - n.now()
+			round := a.Round
+			time.AfterFunc(max(d, 0), func() { n.events <- turn.Timer{Now: n.now(), Round: round} })
+		case turn.Compute:
+			n.compute(a)
+		case turn.Publish:
+			n.publish(a.Decision)
+		case turn.Drop:
+			n.cfg.Metrics.Dropped.WithLabelValues(string(a.Reason)).Inc()
+			key := string(a.Reason) + "/" + a.Sender
+			if !n.loggedBad[key] {
+				n.loggedBad[key] = true
+				n.cfg.Log.Warn("dropped message (further drops of this kind from this sender are counted, not logged)",
+					zap.String("reason", string(a.Reason)), zap.String("sender", a.Sender), zap.String("detail", a.Detail))
+			}
+		}
+	}
+	if late := n.machine.Counters().Late; late > n.lateSeen {
+		n.cfg.Metrics.Late.Add(float64(late - n.lateSeen))
+		n.lateSeen = late
+	}
+}
+
+func (n *Node) compute(c turn.Compute) {
+	x, params := n.x, n.params
+	known := slices.Clone(c.Known)
+	for _, j := range c.Guess {
+		known[j] = n.cfg.Guess.Guess(x, j)
+	}
+	seed := decide.TurnSeed(params.GetFleetSeed(), int(c.Round), n.cfg.Robot)
+	go func() {
+		t0 := time.Now()
+		ctl := n.cfg.Compute.Turn(x, n.cfg.Robot, known, seed, params)
+		took := time.Since(t0)
+		n.cfg.Metrics.Compute.Observe(took.Seconds())
+		n.events <- turn.Computed{Now: n.now(), Round: c.Round, Control: ctl, Took: took}
+	}()
+}
+
+func (n *Node) publish(d *pb.Decision) {
+	if int(d.GetControl()) >= n.cfg.Model.NumControls(n.x, n.cfg.Robot) {
+		n.cfg.Log.Error("rollout produced an out-of-range control; holding", zap.Int32("control", d.GetControl()))
+		return
+	}
+	d.HopUs = uint64(n.hop.Load() / 1000)
+	data, err := proto.Marshal(d)
+	if err != nil {
+		n.cfg.Log.Error("marshal decision", zap.Error(err))
+		return
+	}
+	n.cfg.Metrics.TurnLatency.WithLabelValues(n.mode.String()).Observe((n.now() - n.roundAt).Seconds())
+	guessed := "no"
+	if len(d.GetGuessed()) > 0 {
+		guessed = "yes"
+	}
+	n.cfg.Metrics.Turns.WithLabelValues(guessed).Inc()
+	n.mu.Lock()
+	v := n.view(d.GetRound())
+	if !v.Closed {
+		v.Control, v.Decided = int(d.GetControl()), true
+		v.Action = n.controlName(v.Control)
+		v.Heard, v.Guessed = orEmpty(d.GetHeard()), orEmpty(d.GetGuessed())
+	}
+	n.notify()
+	n.mu.Unlock()
+	subj := n.cfg.Subjects.DecisionOf(n.cfg.Robot)
+	send := func() {
+		if err := n.nc.Publish(subj, data); err != nil {
+			n.cfg.Log.Warn("publish decision", zap.Uint64("round", d.GetRound()), zap.Error(err))
+		}
+	}
+	if n.cfg.InjectDelay > 0 {
+		time.AfterFunc(n.cfg.InjectDelay, send)
+	} else {
+		send()
+	}
+}
+
+func orEmpty(s []uint32) []uint32 {
+	if s == nil {
+		return []uint32{}
+	}
+	return s
+}
+
+// Decision returns the view of round r (0: the latest), waiting up to wait
+// for it to be decided (or closed, with closed set). A robot with nothing
+// valid holds: the view says so and why.
+func (n *Node) Decision(ctx context.Context, r uint64, wait time.Duration, closed bool) View {
+	deadline := time.NewTimer(wait)
+	defer deadline.Stop()
+	for {
+		n.mu.Lock()
+		round := r
+		if round == 0 {
+			round = n.latest
+		}
+		v, ok := n.views[round]
+		ch := n.changed
+		var out View
+		if ok {
+			out = *v
+		}
+		stale := n.lastStart.IsZero() || time.Since(n.lastStart) > n.cfg.Stale
+		n.mu.Unlock()
+		done := ok && (out.Closed || (!closed && (out.Decided || out.SitOut)))
+		if done {
+			return out
+		}
+		select {
+		case <-ch:
+			continue
+		case <-ctx.Done():
+		case <-deadline.C:
+		}
+		out.Round, out.Control, out.Hold = round, 0, true
+		out.Action = n.controlName(0)
+		switch {
+		case round == 0 || (r == 0 && stale):
+			out.Reason = fmt.Sprintf("no round started in the last %s (coordinator gone?)", n.cfg.Stale)
+		case !ok:
+			out.Reason = fmt.Sprintf("round %d has not started here", round)
+		default:
+			out.Reason = fmt.Sprintf("no decision for round %d in time", round)
+		}
+		if out.Heard == nil {
+			out.Heard, out.Guessed = []uint32{}, []uint32{}
+		}
+		return out
+	}
+}
+
+// Report is an observation from the robot's own software.
+type Report struct {
+	Round    uint64           `json:"round"`
+	Position int32            `json:"position"`
+	Applied  int              `json:"applied"`
+	Seen     []model.Sighting `json:"seen"`
+}
+
+// ErrBadReport wraps reports the model refuses.
+var ErrBadReport = errors.New("bad observation")
+
+// Observe checks a report against the model and sends it to the coordinator.
+func (n *Node) Observe(rep Report) error {
+	m := n.cfg.Model
+	n.mu.Lock()
+	scratch := m.NewState()
+	if n.state != nil {
+		m.CopyState(scratch, n.state)
+	} else {
+		m.Start(scratch, model.NewRNG(0).Rand)
+	}
+	n.mu.Unlock()
+	if rep.Applied < 0 || rep.Applied >= m.MaxControls() {
+		return fmt.Errorf("%w: applied control %d is not one of 0..%d", ErrBadReport, rep.Applied, m.MaxControls()-1)
+	}
+	if err := m.Absorb(scratch, n.cfg.Robot, rep.Position, rep.Seen); err != nil {
+		return fmt.Errorf("%w: %v", ErrBadReport, err)
+	}
+	obs := &pb.Observation{Fleet: n.cfg.Fleet, Round: rep.Round, Robot: uint32(n.cfg.Robot), Position: rep.Position,
+		Applied: int32(rep.Applied), Sender: n.cfg.Sender}
+	for _, s := range rep.Seen {
+		obs.Seen = append(obs.Seen, &pb.Sighting{What: s.What, Value: s.Value})
+	}
+	data, err := proto.Marshal(obs)
+	if err != nil {
+		return err
+	}
+	if err := n.nc.Publish(n.cfg.Subjects.ObsOf(n.cfg.Robot), data); err != nil {
+		return fmt.Errorf("sending observation: %w", err)
+	}
+	return nil
+}

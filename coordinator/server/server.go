@@ -1,0 +1,220 @@
+// Package server is the coordinator's command line: flags, NATS (or an
+// embedded server), gossip, the decision log, signals. coordinator's main
+// calls Main; so does `sim coordinator`, for the simulator's fleets.
+package server
+
+import (
+	"bufio"
+	"context"
+	"errors"
+	"flag"
+	"fmt"
+	"net"
+	"net/http"
+	"os"
+	"os/signal"
+	"strconv"
+	"strings"
+	"syscall"
+	"time"
+
+	"github.com/prometheus/client_golang/prometheus"
+	"github.com/prometheus/client_golang/prometheus/collectors"
+	"github.com/prometheus/client_golang/prometheus/promhttp"
+	"go.uber.org/zap"
+
+	"baton/agentd/turn"
+	"baton/coordinator/hub"
+	"baton/deploy/shell"
+	pb "baton/proto"
+	"baton/sim/model"
+	"baton/sim/scenarios"
+)
+
+const synopsis = `coordinator: Baton's round clock for one fleet.
+
+It starts rounds, relays the fleet state built from the robots' reports,
+keeps the turn order from live gossip membership (dead robots are skipped,
+returning ones rejoin), and writes a decision log (one JSON line per round).
+
+usage: coordinator [--embed-nats | --nats URL] [flags]
+`
+
+// Main runs the coordinator with args and returns the exit code.
+func Main(args []string) int {
+	fs := flag.NewFlagSet("coordinator", flag.ContinueOnError)
+	natsURL := fs.String("nats", "nats://127.0.0.1:4222", "NATS server URL list, comma-separated")
+	creds := fs.String("creds", "", "NATS credentials file")
+	embed := fs.Bool("embed-nats", false, "run an embedded NATS server in this process (nothing else to install)")
+	embedListen := fs.String("embed-listen", "127.0.0.1:4222", "address of the embedded NATS server")
+	fleet := fs.String("fleet", "demo", "fleet id")
+	prefix := fs.String("prefix", "baton", "NATS subject prefix")
+	scenario := fs.String("scenario", "harbor", "scenario: "+strings.Join(scenarios.Names(), " or "))
+	file := fs.String("config", "", "scenario YAML file (default: the built-in demo); robots must use the same")
+	robots := fs.Int("robots", 0, "fleet size (default: the file's or demo's own)")
+	seed := fs.Uint64("seed", 1, "fleet seed for every robot's Monte Carlo")
+	samples := fs.Int("samples", 16, "Monte Carlo samples per Q-factor")
+	horizon := fs.Int("horizon", 20, "base-policy steps simulated after the first step")
+	termCost := fs.Bool("terminal-cost", false, "add the scenario's cost-to-go estimate at truncation")
+	modeName := fs.String("mode", "hybrid", "sequential, parallel or hybrid")
+	autoParallel := fs.Bool("auto-parallel", false, "switch rounds to parallel when measured links are too slow for --period")
+	turnDeadline := fs.Duration("turn-deadline", 200*time.Millisecond, "time each turn gets; turn k is due (k+1) x this after the round starts")
+	period := fs.Duration("period", 0, "start rounds at most this often (0: as soon as the previous round's reports are in)")
+	rounds := fs.Int("rounds", 0, "stop after this many rounds (0: run until stopped)")
+	reportWait := fs.Duration("report-wait", 2*time.Second, "how long to wait for robots' reports after a round")
+	orderFlag := fs.String("order", "", "preferred turn order, e.g. 2,0,1 (default 0..m-1)")
+	logFile := fs.String("decision-log", "", "append one JSON line per round to this file")
+	httpAddr := fs.String("http", "127.0.0.1:7480", "healthz and metrics address")
+	gossip := fs.String("gossip", "127.0.0.1:7946", "gossip bind host:port that robots --join")
+	connectTimeout := fs.Duration("connect-timeout", 30*time.Second, "keep retrying an unreachable NATS server this long")
+	logLevel := fs.String("log-level", "info", "debug, info, warn or error")
+	logJSON := fs.Bool("log-json", false, "log JSON lines")
+	fs.Usage = func() {
+		fmt.Fprint(fs.Output(), synopsis+"\nflags:\n")
+		fs.PrintDefaults()
+	}
+	if err := fs.Parse(args); err != nil {
+		if errors.Is(err, flag.ErrHelp) {
+			return 0
+		}
+		return 2
+	}
+	lg, err := shell.Logger(*logLevel, *logJSON, "coordinator")
+	if err != nil {
+		fmt.Fprintln(os.Stderr, "coordinator:", err)
+		return 2
+	}
+	defer lg.Sync()
+	fail := func(err error) int {
+		lg.Error("coordinator cannot start", zap.Error(err))
+		fmt.Fprintln(os.Stderr, "coordinator:", err)
+		return 1
+	}
+	mode, ok := turn.ParseMode(*modeName)
+	if !ok {
+		return fail(fmt.Errorf("--mode %q: use sequential, parallel or hybrid", *modeName))
+	}
+	if *turnDeadline <= 0 {
+		return fail(fmt.Errorf("--turn-deadline must be positive, got %s", *turnDeadline))
+	}
+	if *samples < 1 || *horizon < 0 {
+		return fail(fmt.Errorf("--samples must be >= 1 and --horizon >= 0"))
+	}
+	m, err := scenarios.Load(*scenario, *file, *robots)
+	if err != nil {
+		return fail(err)
+	}
+	fm, ok := m.(model.Fleet)
+	if !ok {
+		return fail(fmt.Errorf("scenario %s cannot run as a fleet", m.Name()))
+	}
+	order, err := parseOrder(*orderFlag, m.Robots())
+	if err != nil {
+		return fail(err)
+	}
+	subj, err := pb.NewSubjects(*prefix, *fleet)
+	if err != nil {
+		return fail(err)
+	}
+	digest, err := shell.Digest(*scenario, *file, m.Robots())
+	if err != nil {
+		return fail(err)
+	}
+	url := *natsURL
+	if *embed {
+		host, portStr, err := net.SplitHostPort(*embedListen)
+		if err != nil {
+			return fail(fmt.Errorf("--embed-listen %q: %w", *embedListen, err))
+		}
+		port, _ := strconv.Atoi(portStr)
+		ns, u, err := shell.EmbeddedNATS(host, port)
+		if err != nil {
+			return fail(err)
+		}
+		defer ns.Shutdown()
+		url = u
+		lg.Info("embedded NATS server up", zap.String("url", u))
+	}
+	nc, err := shell.Connect(url, *creds, "coordinator-"+*fleet, *connectTimeout, lg)
+	if err != nil {
+		return fail(err)
+	}
+	defer nc.Close()
+	ml, err := shell.Gossip(*fleet+"/coordinator", *gossip, nil, lg)
+	if err != nil {
+		return fail(err)
+	}
+	defer ml.Shutdown()
+
+	var logW *bufio.Writer
+	if *logFile != "" {
+		f, err := os.OpenFile(*logFile, os.O_CREATE|os.O_WRONLY|os.O_APPEND, 0o644)
+		if err != nil {
+			return fail(fmt.Errorf("--decision-log: %w", err))
+		}
+		defer f.Close()
+		logW = bufio.NewWriter(f)
+		defer logW.Flush()
+	}
+	reg := prometheus.NewRegistry()
+	reg.MustRegister(collectors.NewGoCollector(), collectors.NewProcessCollector(collectors.ProcessCollectorOpts{}))
+	h := int32(*horizon)
+	if h == 0 {
+		h = -1 // 0 means "first step only" on the wire, not decide's default
+	}
+	cfg := hub.Config{Fleet: *fleet, Subjects: subj, Model: fm, Digest: digest, Mode: mode, Guess: "base",
+		Params:     &pb.DecideParams{Samples: uint32(*samples), Horizon: h, TerminalCost: *termCost, FleetSeed: *seed},
+		TurnBudget: *turnDeadline, Period: *period, Rounds: *rounds, ReportWait: *reportWait, Order: order,
+		Alive: func() []int { return shell.AliveRobots(ml, *fleet) }, AutoParallel: *autoParallel,
+		Log: lg, Metrics: hub.NewMetrics(reg),
+		OnRound: func(r hub.Record) {
+			lg.Debug("round closed", zap.Uint64("round", r.Round), zap.Ints("order", r.Order), zap.Ints("held", r.Held),
+				zap.Uint64("latency_us", r.LatencyUs))
+		},
+	}
+	if logW != nil {
+		cfg.DecisionLog = logW
+	}
+	ctx, stop := signal.NotifyContext(context.Background(), os.Interrupt, syscall.SIGTERM)
+	defer stop()
+	ln, err := net.Listen("tcp", *httpAddr)
+	if err != nil {
+		return fail(fmt.Errorf("--http %s: %w", *httpAddr, err))
+	}
+	mux := http.NewServeMux()
+	mux.Handle("GET /metrics", promhttp.HandlerFor(reg, promhttp.HandlerOpts{}))
+	mux.HandleFunc("GET /healthz", func(w http.ResponseWriter, _ *http.Request) {
+		if !nc.IsConnected() {
+			http.Error(w, "not connected to NATS", http.StatusServiceUnavailable)
+			return
+		}
+		fmt.Fprintf(w, "ok fleet %s, %d robots alive\n", *fleet, len(shell.AliveRobots(ml, *fleet)))
+	})
+	srv := &http.Server{Handler: mux, ReadHeaderTimeout: 5 * time.Second}
+	go func() { _ = srv.Serve(ln) }()
+	defer srv.Close()
+	lg.Info("coordinator up", zap.String("fleet", *fleet), zap.String("scenario", m.Name()), zap.Int("robots", m.Robots()),
+		zap.String("nats", nc.ConnectedUrl()), zap.String("gossip", *gossip), zap.String("mode", mode.String()), zap.String("digest", digest))
+	if err := hub.New(cfg, nc).Run(ctx); err != nil && !errors.Is(err, context.Canceled) {
+		return fail(err)
+	}
+	lg.Info("coordinator stopped")
+	return 0
+}
+
+func parseOrder(s string, m int) ([]int, error) {
+	if s == "" {
+		return nil, nil
+	}
+	seen := map[int]bool{}
+	var out []int
+	for _, f := range strings.Split(s, ",") {
+		v, err := strconv.Atoi(strings.TrimSpace(f))
+		if err != nil || v < 0 || v >= m || seen[v] {
+			return nil, fmt.Errorf("--order %q: want distinct robot ids 0..%d", s, m-1)
+		}
+		seen[v] = true
+		out = append(out, v)
+	}
+	return out, nil
+}

@@ -1,0 +1,186 @@
+// Package shell holds what agentd, the coordinator and the simulator share
+// at the edge: connecting to NATS (with a clear error and retries), the
+// embedded NATS server, memberlist gossip, logging and the scenario digest.
+package shell
+
+import (
+	"crypto/sha256"
+	"encoding/hex"
+	"errors"
+	"fmt"
+	"io"
+	"log"
+	"net"
+	"os"
+	"strconv"
+	"strings"
+	"time"
+
+	"github.com/hashicorp/memberlist"
+	"github.com/nats-io/nats-server/v2/server"
+	"github.com/nats-io/nats.go"
+	"go.uber.org/zap"
+	"go.uber.org/zap/zapcore"
+)
+
+// Logger builds a zap logger at level ("debug", "info", "warn", "error")
+// writing to stderr; json picks machine-readable lines.
+func Logger(level string, json bool, name string) (*zap.Logger, error) {
+	lvl, err := zapcore.ParseLevel(level)
+	if err != nil {
+		return nil, fmt.Errorf("--log-level %q: use debug, info, warn or error", level)
+	}
+	cfg := zap.NewProductionConfig()
+	if !json {
+		cfg = zap.NewDevelopmentConfig()
+		cfg.DisableStacktrace = true
+	}
+	cfg.Level = zap.NewAtomicLevelAt(lvl)
+	cfg.OutputPaths = []string{"stderr"}
+	l, err := cfg.Build()
+	if err != nil {
+		return nil, err
+	}
+	return l.Named(name), nil
+}
+
+// Connect dials the NATS URL list, retrying every second until timeout
+// when no server answers, and keeps reconnecting after that.
+func Connect(urls, creds, name string, timeout time.Duration, lg *zap.Logger) (*nats.Conn, error) {
+	if strings.TrimSpace(urls) == "" {
+		return nil, errors.New("--nats: give at least one NATS URL, e.g. nats://127.0.0.1:4222")
+	}
+	opts := []nats.Option{
+		nats.Name(name), nats.MaxReconnects(-1), nats.ReconnectWait(250 * time.Millisecond),
+		nats.DisconnectErrHandler(func(_ *nats.Conn, err error) {
+			lg.Warn("lost NATS connection; reconnecting", zap.Error(err))
+		}),
+		nats.ReconnectHandler(func(c *nats.Conn) { lg.Info("NATS reconnected", zap.String("url", c.ConnectedUrl())) }),
+	}
+	if creds != "" {
+		if _, err := os.Stat(creds); err != nil {
+			return nil, fmt.Errorf("--creds: %w", err)
+		}
+		opts = append(opts, nats.UserCredentials(creds))
+	}
+	deadline := time.Now().Add(timeout)
+	for attempt := 1; ; attempt++ {
+		nc, err := nats.Connect(urls, opts...)
+		if err == nil {
+			return nc, nil
+		}
+		if time.Now().After(deadline) {
+			return nil, fmt.Errorf("cannot reach NATS at %s after %d attempts over %s: %w", urls, attempt, timeout, err)
+		}
+		lg.Warn("cannot reach NATS; retrying in 1s", zap.String("nats", urls), zap.Int("attempt", attempt), zap.Error(err))
+		time.Sleep(time.Second)
+	}
+}
+
+// EmbeddedNATS starts a NATS server in this process on host:port (port 0:
+// a free one) and returns it with its client URL.
+func EmbeddedNATS(host string, port int) (*server.Server, string, error) {
+	if port == 0 {
+		port = server.RANDOM_PORT
+	}
+	ns, err := server.NewServer(&server.Options{Host: host, Port: port, NoSigs: true, NoLog: true, MaxPayload: 8 << 20})
+	if err != nil {
+		return nil, "", fmt.Errorf("embedded NATS: %w", err)
+	}
+	go ns.Start()
+	if !ns.ReadyForConnections(10 * time.Second) {
+		ns.Shutdown()
+		return nil, "", fmt.Errorf("embedded NATS on %s:%d did not start within 10s", host, port)
+	}
+	return ns, ns.ClientURL(), nil
+}
+
+// GossipConfig is memberlist tuned for a site network: failures are found
+// in about a second, not the default several.
+func GossipConfig(name, bind string) (*memberlist.Config, error) {
+	host, portStr, err := net.SplitHostPort(bind)
+	if err != nil {
+		return nil, fmt.Errorf("--gossip %q: want host:port (port 0 picks one): %w", bind, err)
+	}
+	port, err := strconv.Atoi(portStr)
+	if err != nil || port < 0 || port > 65535 {
+		return nil, fmt.Errorf("--gossip %q: bad port", bind)
+	}
+	c := memberlist.DefaultLocalConfig()
+	c.Name = name
+	c.BindAddr, c.BindPort = host, port
+	c.AdvertiseAddr, c.AdvertisePort = "", 0
+	c.ProbeInterval = 200 * time.Millisecond
+	c.ProbeTimeout = 100 * time.Millisecond
+	c.SuspicionMult = 2
+	c.GossipInterval = 50 * time.Millisecond
+	c.PushPullInterval = 2 * time.Second
+	// A restarted daemon comes back on a new port under the same name.
+	c.DeadNodeReclaimTime = 100 * time.Millisecond
+	c.Logger = log.New(io.Discard, "", 0)
+	return c, nil
+}
+
+// Gossip joins (or starts) a memberlist cluster.
+func Gossip(name, bind string, join []string, lg *zap.Logger) (*memberlist.Memberlist, error) {
+	c, err := GossipConfig(name, bind)
+	if err != nil {
+		return nil, err
+	}
+	ml, err := memberlist.Create(c)
+	if err != nil {
+		return nil, fmt.Errorf("gossip on %s: %w", bind, err)
+	}
+	if len(join) > 0 {
+		// Retry: the coordinator may still be starting.
+		var jerr error
+		for range 50 {
+			if _, jerr = ml.Join(join); jerr == nil {
+				break
+			}
+			time.Sleep(100 * time.Millisecond)
+		}
+		if jerr != nil {
+			ml.Shutdown()
+			return nil, fmt.Errorf("joining gossip at %v: %w", join, jerr)
+		}
+	}
+	lg.Info("gossip up", zap.String("name", name), zap.String("addr", fmt.Sprintf("%s:%d", ml.LocalNode().Addr, ml.LocalNode().Port)))
+	return ml, nil
+}
+
+// RobotMember is a robot's gossip name in a fleet.
+func RobotMember(fleet string, r int) string { return fmt.Sprintf("%s/robot-%d", fleet, r) }
+
+// AliveRobots lists the robots of fleet that gossip reports alive.
+func AliveRobots(ml *memberlist.Memberlist, fleet string) []int {
+	var out []int
+	prefix := fleet + "/robot-"
+	for _, n := range ml.Members() {
+		if n.State != memberlist.StateAlive || !strings.HasPrefix(n.Name, prefix) {
+			continue
+		}
+		if r, err := strconv.Atoi(strings.TrimPrefix(n.Name, prefix)); err == nil {
+			out = append(out, r)
+		}
+	}
+	return out
+}
+
+// Digest identifies the scenario a process runs: file contents (or the
+// built-in demo's name) and the robot count, so robots started with a
+// different file refuse the round.
+func Digest(scenario, file string, robots int) (string, error) {
+	h := sha256.New()
+	fmt.Fprintf(h, "%s\x00%d\x00", scenario, robots)
+	if file == "" {
+		h.Write([]byte("builtin"))
+	} else {
+		data, err := os.ReadFile(file)
+		if err != nil {
+			return "", fmt.Errorf("scenario file: %w", err)
+		}
+		h.Write(data)
+	}
+	return hex.EncodeToString(h.Sum(nil))[:16], nil
+}
