@@ -21,6 +21,7 @@ commands:
   compare   base vs all-at-once vs one-at-a-time rollout on seeded episodes
   exact     exact costs of optimal, base and both rollouts on a tiny instance
   fleet     a whole fleet on this machine: embedded NATS, coordinator, one agentd per robot
+  bench     bench rounds: hop and round latency against the physics
   agentd, coordinator   the daemons themselves (as ./agentd and ./coordinator)
 
 Run 'sim <command> -h' for a command's flags.
@@ -43,6 +44,8 @@ func run(args []string) int {
 		err = cmdExact(args[1:])
 	case "fleet":
 		err = cmdFleet(args[1:])
+	case "bench":
+		err = cmdBench(args[1:])
 	case "agentd":
 		// The same daemon as ./agentd, so `sim fleet` can start real
 		// processes from this one binary.

@@ -153,3 +153,34 @@ func TestHelp(t *testing.T) {
 		t.Fatalf("compare -h: %d %q", code, errOut)
 	}
 }
+
+// The latency benchmark runs end to end and reports every row (figures are
+// for the note, not asserted: this machine's timing is noisy).
+func TestBenchRounds(t *testing.T) {
+	out, errOut, code := runSim(t, "bench", "rounds", "--robots", "2,3", "--rounds", "3", "--hops", "20", "--compute", "1ms", "--json")
+	if code != 0 {
+		t.Fatalf("exit %d: %s", code, errOut)
+	}
+	var rep struct {
+		Hop  float64 `json:"hop_us"`
+		Rows []struct {
+			Robots  int     `json:"robots"`
+			Mode    string  `json:"mode"`
+			Round   float64 `json:"round_us"`
+			Compute float64 `json:"compute_us"`
+			Ratio   float64 `json:"overhead_ratio"`
+		} `json:"rows"`
+	}
+	if err := json.Unmarshal([]byte(out), &rep); err != nil {
+		t.Fatalf("%v\n%s", err, out)
+	}
+	if rep.Hop <= 0 || len(rep.Rows) != 4 {
+		t.Fatalf("report %s", out)
+	}
+	for _, r := range rep.Rows {
+		// A sequential round cannot beat its robots' computes done one after another.
+		if r.Mode == "sequential" && r.Round < float64(r.Robots)*r.Compute {
+			t.Errorf("sequential round of %d robots took %.0fus, less than %d computes of %.0fus", r.Robots, r.Round, r.Robots, r.Compute)
+		}
+	}
+}

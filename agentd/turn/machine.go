@@ -369,3 +369,7 @@ func (m *Machine) onComputed(e Computed) []Action {
 		Sender:    m.cfg.Sender,
 	}}}
 }
+
+// Late is Counters().Late without copying the drop map (drivers poll it
+// after every step).
+func (m *Machine) Late() uint64 { return m.late }

@@ -1,0 +1,248 @@
+package node
+
+import (
+	"context"
+	"encoding/json"
+	"net/http"
+	"net/http/httptest"
+	"strings"
+	"testing"
+	"time"
+
+	"github.com/nats-io/nats.go"
+	"github.com/prometheus/client_golang/prometheus"
+	"github.com/prometheus/client_golang/prometheus/testutil"
+	"go.uber.org/zap"
+	"go.uber.org/zap/zaptest/observer"
+	"google.golang.org/protobuf/proto"
+
+	"baton/deploy/shell"
+	pb "baton/proto"
+	"baton/sim/harbor"
+	"baton/sim/model"
+)
+
+// fixed is a stub Computer: always the same control, no compute.
+type fixed int
+
+func (f fixed) Turn(model.State, int, []int, uint64, *pb.DecideParams) int { return int(f) }
+
+type rig struct {
+	n     *Node
+	nc    *nats.Conn // the test's own connection
+	subj  pb.Subjects
+	logs  *observer.ObservedLogs
+	met   *Metrics
+	m     *harbor.Model
+	x     model.State
+	dec   chan *pb.Decision
+	start func(round uint64, order []uint32, mutate func(*pb.RoundStart))
+}
+
+// newRig runs robot 1 of a 4-boat harbor fleet on a real, embedded NATS
+// server and gives the test its own connection to poke it with.
+func newRig(t *testing.T) *rig {
+	t.Helper()
+	ns, url, err := shell.EmbeddedNATS("127.0.0.1", 0)
+	if err != nil {
+		t.Fatal(err)
+	}
+	t.Cleanup(ns.Shutdown)
+	connect := func() *nats.Conn {
+		nc, err := nats.Connect(url)
+		if err != nil {
+			t.Fatal(err)
+		}
+		t.Cleanup(nc.Close)
+		return nc
+	}
+	m, _ := harbor.Default(4)
+	subj, _ := pb.NewSubjects("baton", "yard")
+	core, logs := observer.New(zap.InfoLevel)
+	met := NewMetrics(prometheus.NewRegistry())
+	n := New(Config{Fleet: "yard", Subjects: subj, Robot: 1, Sender: "robot-1", Model: m, Digest: "d1",
+		Compute: fixed(harbor.East), Log: zap.New(core), Metrics: met}, connect())
+	ctx, cancel := context.WithCancel(context.Background())
+	t.Cleanup(cancel)
+	go n.Run(ctx)
+	r := &rig{n: n, nc: connect(), subj: subj, logs: logs, met: met, m: m, dec: make(chan *pb.Decision, 16)}
+	r.x = m.NewState()
+	m.Start(r.x, model.NewRNG(1).Rand)
+	sub, _ := r.nc.Subscribe(subj.DecisionOf(1), func(msg *nats.Msg) {
+		var d pb.Decision
+		if proto.Unmarshal(msg.Data, &d) == nil {
+			r.dec <- &d
+		}
+	})
+	t.Cleanup(func() { sub.Unsubscribe() })
+	// Let the node's subscriptions reach the server.
+	waitFor(t, func() bool { return ns.NumSubscriptions() >= 4 })
+	r.start = func(round uint64, order []uint32, mutate func(*pb.RoundStart)) {
+		ints, reals := m.Flatten(r.x, nil, nil)
+		rs := &pb.RoundStart{Fleet: "yard", Round: round, Sender: "coordinator", Order: order,
+			DeadlinesUs: []uint64{10e6, 20e6, 30e6, 40e6}[:len(order)], Mode: pb.Mode_MODE_HYBRID,
+			State: &pb.Snapshot{Scenario: "harbor", Ints: ints, Reals: reals}, ScenarioDigest: "d1",
+			Params: &pb.DecideParams{Samples: 2, Horizon: 2, FleetSeed: 1}}
+		if mutate != nil {
+			mutate(rs)
+		}
+		r.pub(subj.Round, rs)
+	}
+	return r
+}
+
+func (r *rig) pub(subject string, msg proto.Message) {
+	data, _ := proto.Marshal(msg)
+	r.nc.Publish(subject, data)
+	r.nc.Flush()
+}
+
+func waitFor(t *testing.T, cond func() bool) {
+	t.Helper()
+	deadline := time.Now().Add(5 * time.Second)
+	for !cond() {
+		if time.Now().After(deadline) {
+			t.Fatal("condition not met in 5s")
+		}
+		time.Sleep(5 * time.Millisecond)
+	}
+}
+
+// Bad input on the real wire: every kind is dropped, counted each time,
+// logged once per sender, and the robot still takes its turn afterwards.
+func TestBadInputOverNATS(t *testing.T) {
+	r := newRig(t)
+	r.start(5, []uint32{0, 1, 2}, nil)
+	waitFor(t, func() bool { return r.n.latestRound() == 5 })
+	dec := func(d *pb.Decision) { r.pub(r.subj.DecisionOf(int(d.GetRobot())), d) }
+	cases := []struct {
+		name   string
+		reason string
+		send   func()
+	}{
+		{"malformed protobuf", "malformed", func() { r.nc.Publish(r.subj.DecisionOf(0), []byte{0xff, 0xff, 0x01}); r.nc.Flush() }},
+		{"another fleet", "foreign", func() { dec(&pb.Decision{Fleet: "dock", Round: 5, Robot: 0, Control: 1}) }},
+		{"replayed old round", "stale", func() { dec(&pb.Decision{Fleet: "yard", Round: 3, Robot: 0, Control: 1}) }},
+		{"robot not in the order", "not-in-order", func() { dec(&pb.Decision{Fleet: "yard", Round: 5, Robot: 3, Control: 1}) }},
+		{"out-of-range control", "malformed", func() { dec(&pb.Decision{Fleet: "yard", Round: 5, Robot: 2, Control: 99}) }},
+		{"malformed round start", "malformed", func() { r.nc.Publish(r.subj.Round, []byte("not protobuf")); r.nc.Flush() }},
+		{"round start for another fleet", "foreign", func() { r.start(6, []uint32{0, 1}, func(rs *pb.RoundStart) { rs.Fleet = "dock" }) }},
+		{"round start from another scenario file", "foreign", func() {
+			r.start(6, []uint32{0, 1}, func(rs *pb.RoundStart) { rs.ScenarioDigest = "other" })
+		}},
+		{"round start with a broken snapshot", "malformed", func() {
+			r.start(6, []uint32{0, 1}, func(rs *pb.RoundStart) { rs.State.Ints = rs.State.Ints[:2] })
+		}},
+	}
+	want := map[string]float64{}
+	for _, c := range cases {
+		for range 2 { // twice: counted twice, logged once
+			c.send()
+			want[c.reason]++
+		}
+		reason, n := c.reason, want[c.reason]
+		waitFor(t, func() bool { return testutil.ToFloat64(r.met.Dropped.WithLabelValues(reason)) == n })
+	}
+	if got := r.n.latestRound(); got != 5 {
+		t.Fatalf("a bad round start replaced round 5: now %d", got)
+	}
+	seen := map[string]int{}
+	for _, e := range r.logs.FilterMessageSnippet("dropped message").All() {
+		seen[e.ContextMap()["reason"].(string)+"/"+e.ContextMap()["sender"].(string)+"/"+e.ContextMap()["detail"].(string)]++
+	}
+	for k, c := range seen {
+		if c != 1 {
+			t.Errorf("logged %d times: %s", c, k)
+		}
+	}
+	// The robot still decides: robot 0's valid decision completes its wait.
+	dec(&pb.Decision{Fleet: "yard", Round: 5, Robot: 0, Control: harbor.North, Sender: "robot-0"})
+	select {
+	case d := <-r.dec:
+		if d.GetRound() != 5 || d.GetControl() != harbor.East || len(d.GetHeard()) != 1 || d.GetHeard()[0] != 0 {
+			t.Fatalf("decision %v", d)
+		}
+	case <-time.After(5 * time.Second):
+		t.Fatal("robot 1 never decided")
+	}
+}
+
+// The robot's own software reads its decision and gets "hold" with a
+// reason whenever there is nothing valid to do.
+func TestLocalInterface(t *testing.T) {
+	r := newRig(t)
+	srv := httptest.NewServer(r.n.Handler(nil))
+	defer srv.Close()
+	get := func(q string) View {
+		resp, err := http.Get(srv.URL + "/v1/decision" + q)
+		if err != nil {
+			t.Fatal(err)
+		}
+		defer resp.Body.Close()
+		var v View
+		json.NewDecoder(resp.Body).Decode(&v)
+		return v
+	}
+	if v := get("?wait=10ms"); !v.Hold || !strings.Contains(v.Reason, "no round started") {
+		t.Fatalf("before any round: %+v", v)
+	}
+	r.start(1, []uint32{1, 0}, nil) // robot 1 goes first: decides at once
+	if v := get("?round=1&wait=5s"); v.Hold || v.Control != harbor.East || v.Action != "E" || !v.Decided {
+		t.Fatalf("round 1: %+v", v)
+	}
+	if v := get("?round=9&wait=10ms"); !v.Hold || v.Control != 0 || !strings.Contains(v.Reason, "round 9 has not started") {
+		t.Fatalf("future round: %+v", v)
+	}
+	r.start(2, []uint32{0, 2}, nil) // robot 1 sits this one out
+	if v := get("?round=2&wait=5s"); !v.Hold || v.Reason != "not in this round's order" {
+		t.Fatalf("sitting out: %+v", v)
+	}
+	for _, c := range []struct{ q, want string }{{"?round=x", "is not a round number"}, {"?wait=forever", "give a duration"}} {
+		resp, _ := http.Get(srv.URL + "/v1/decision" + c.q)
+		var e map[string]string
+		json.NewDecoder(resp.Body).Decode(&e)
+		resp.Body.Close()
+		if resp.StatusCode != 400 || !strings.Contains(e["error"], c.want) {
+			t.Errorf("%s: %d %v", c.q, resp.StatusCode, e)
+		}
+	}
+	obs := make(chan *pb.Observation, 1)
+	sub, _ := r.nc.Subscribe(r.subj.ObsOf(1), func(m *nats.Msg) {
+		var o pb.Observation
+		proto.Unmarshal(m.Data, &o)
+		obs <- &o
+	})
+	defer sub.Unsubscribe()
+	r.nc.Flush()
+	for _, c := range []struct{ body, want string }{
+		{`{"round":1,"position":-4,"applied":0}`, "bad observation"},
+		{`{"round":1,"position":3,"applied":9}`, "applied control 9 is not one of 0..4"},
+		{`{"round":1,"position":3,"applied":0,"seen":[{"what":99,"value":1}]}`, "bad observation"},
+		{`{"round":1,"pos":3}`, "unknown field"},
+		{`not json`, "not valid JSON"},
+	} {
+		resp, err := http.Post(srv.URL+"/v1/observation", "application/json", strings.NewReader(c.body))
+		if err != nil {
+			t.Fatal(err)
+		}
+		var e map[string]string
+		json.NewDecoder(resp.Body).Decode(&e)
+		resp.Body.Close()
+		if resp.StatusCode != 400 || !strings.Contains(e["error"], c.want) {
+			t.Errorf("%s: %d %v, want %q", c.body, resp.StatusCode, e, c.want)
+		}
+	}
+	resp, err := http.Post(srv.URL+"/v1/observation", "application/json", strings.NewReader(`{"round":1,"position":3,"applied":3,"seen":[{"what":0,"value":-1}]}`))
+	if err != nil || resp.StatusCode != 202 {
+		t.Fatalf("valid observation refused: %v %v", err, resp.Status)
+	}
+	resp.Body.Close()
+	select {
+	case o := <-obs:
+		if o.GetRobot() != 1 || o.GetPosition() != 3 || o.GetApplied() != 3 || o.GetFleet() != "yard" {
+			t.Fatalf("relayed %v", o)
+		}
+	case <-time.After(5 * time.Second):
+		t.Fatal("observation not relayed")
+	}
+}
