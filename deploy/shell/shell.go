@@ -78,20 +78,32 @@ func Connect(urls, creds, name string, timeout time.Duration, lg *zap.Logger) (*
 }
 
 // EmbeddedNATS starts a NATS server in this process on host:port (port 0:
-// a free one) and returns it with its client URL.
+// a free one) and returns it with its client URL. JetStream is on (for the
+// guess-model store), keeping its files in a temporary directory that the
+// caller's Shutdown leaves behind only if the process dies.
 func EmbeddedNATS(host string, port int) (*server.Server, string, error) {
 	if port == 0 {
 		port = server.RANDOM_PORT
 	}
-	ns, err := server.NewServer(&server.Options{Host: host, Port: port, NoSigs: true, NoLog: true, MaxPayload: 8 << 20})
+	dir, err := os.MkdirTemp("", "baton-nats-")
+	if err != nil {
+		return nil, "", err
+	}
+	ns, err := server.NewServer(&server.Options{Host: host, Port: port, NoSigs: true, NoLog: true, MaxPayload: 8 << 20,
+		JetStream: true, StoreDir: dir, JetStreamMaxMemory: 64 << 20, JetStreamMaxStore: 256 << 20})
 	if err != nil {
 		return nil, "", fmt.Errorf("embedded NATS: %w", err)
 	}
 	go ns.Start()
 	if !ns.ReadyForConnections(10 * time.Second) {
 		ns.Shutdown()
+		os.RemoveAll(dir)
 		return nil, "", fmt.Errorf("embedded NATS on %s:%d did not start within 10s", host, port)
 	}
+	go func() {
+		ns.WaitForShutdown()
+		os.RemoveAll(dir)
+	}()
 	return ns, ns.ClientURL(), nil
 }
 
