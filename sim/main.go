@@ -22,6 +22,8 @@ commands:
   exact     exact costs of optimal, base and both rollouts on a tiny instance
   fleet     a whole fleet on this machine: embedded NATS, coordinator, one agentd per robot
   bench     bench rounds: hop and round latency against the physics
+  train     learn a stand-in for rollout (the learned guess source); --iterations K
+            repeats train-then-use-as-base (approximate policy iteration)
   agentd, coordinator   the daemons themselves (as ./agentd and ./coordinator)
 
 Run 'sim <command> -h' for a command's flags.
@@ -46,6 +48,8 @@ func run(args []string) int {
 		err = cmdFleet(args[1:])
 	case "bench":
 		err = cmdBench(args[1:])
+	case "train":
+		err = cmdTrain(args[1:])
 	case "agentd":
 		// The same daemon as ./agentd, so `sim fleet` can start real
 		// processes from this one binary.

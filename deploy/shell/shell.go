@@ -4,6 +4,7 @@
 package shell
 
 import (
+	"context"
 	"crypto/sha256"
 	"encoding/hex"
 	"errors"
@@ -11,6 +12,7 @@ import (
 	"io"
 	"log"
 	"net"
+	"net/url"
 	"os"
 	"strconv"
 	"strings"
@@ -50,6 +52,17 @@ func Connect(urls, creds, name string, timeout time.Duration, lg *zap.Logger) (*
 	if strings.TrimSpace(urls) == "" {
 		return nil, errors.New("--nats: give at least one NATS URL, e.g. nats://127.0.0.1:4222")
 	}
+	// A URL that cannot parse will never connect: say so at once.
+	for _, u := range strings.Split(urls, ",") {
+		u = strings.TrimSpace(u)
+		if !strings.Contains(u, "://") {
+			u = "nats://" + u
+		}
+		pu, err := url.Parse(u)
+		if err != nil || pu.Host == "" || strings.ContainsAny(pu.Host, " \t") {
+			return nil, fmt.Errorf("--nats %q: not a NATS URL (want e.g. nats://127.0.0.1:4222)", u)
+		}
+	}
 	opts := []nats.Option{
 		nats.Name(name), nats.MaxReconnects(-1), nats.ReconnectWait(250 * time.Millisecond),
 		nats.DisconnectErrHandler(func(_ *nats.Conn, err error) {
@@ -84,6 +97,15 @@ func Connect(urls, creds, name string, timeout time.Duration, lg *zap.Logger) (*
 func EmbeddedNATS(host string, port int) (*server.Server, string, error) {
 	if port == 0 {
 		port = server.RANDOM_PORT
+	}
+	if port != server.RANDOM_PORT {
+		// Say "in use" now rather than time out waiting for a server that
+		// could not bind.
+		l, err := net.Listen("tcp", net.JoinHostPort(host, strconv.Itoa(port)))
+		if err != nil {
+			return nil, "", fmt.Errorf("embedded NATS: %w", err)
+		}
+		l.Close()
 	}
 	dir, err := os.MkdirTemp("", "baton-nats-")
 	if err != nil {
@@ -133,7 +155,8 @@ func GossipConfig(name, bind string) (*memberlist.Config, error) {
 	return c, nil
 }
 
-// Gossip joins (or starts) a memberlist cluster.
+// Gossip starts a memberlist node. With join addresses it tries to join
+// for a few seconds; KeepJoined keeps trying after that.
 func Gossip(name, bind string, join []string, lg *zap.Logger) (*memberlist.Memberlist, error) {
 	c, err := GossipConfig(name, bind)
 	if err != nil {
@@ -144,22 +167,58 @@ func Gossip(name, bind string, join []string, lg *zap.Logger) (*memberlist.Membe
 		return nil, fmt.Errorf("gossip on %s: %w", bind, err)
 	}
 	if len(join) > 0 {
-		// Retry: the coordinator may still be starting.
 		var jerr error
-		for range 50 {
+		for range 30 {
 			if _, jerr = ml.Join(join); jerr == nil {
 				break
 			}
 			time.Sleep(100 * time.Millisecond)
 		}
 		if jerr != nil {
-			ml.Shutdown()
-			return nil, fmt.Errorf("joining gossip at %v: %w", join, jerr)
+			lg.Warn("cannot join gossip yet; will keep trying", zap.Strings("join", join), zap.String("error", oneLine(jerr)))
 		}
 	}
 	lg.Info("gossip up", zap.String("name", name), zap.String("addr", fmt.Sprintf("%s:%d", ml.LocalNode().Addr, ml.LocalNode().Port)))
 	return ml, nil
 }
+
+// KeepJoined re-joins the join addresses whenever no member named want is
+// alive: a coordinator that restarts comes back with an empty member list,
+// and without this its robots would never be scheduled again.
+func KeepJoined(ctx context.Context, ml *memberlist.Memberlist, join []string, want string, lg *zap.Logger) {
+	if len(join) == 0 {
+		return
+	}
+	t := time.NewTicker(500 * time.Millisecond)
+	defer t.Stop()
+	warned := false
+	for {
+		select {
+		case <-ctx.Done():
+			return
+		case <-t.C:
+		}
+		alive := false
+		for _, n := range ml.Members() {
+			alive = alive || (n.Name == want && n.State == memberlist.StateAlive)
+		}
+		if alive {
+			warned = false
+			continue
+		}
+		if _, err := ml.Join(join); err != nil {
+			if !warned {
+				lg.Warn("coordinator not in gossip; retrying join", zap.Strings("join", join), zap.String("error", oneLine(err)))
+				warned = true
+			}
+		} else {
+			lg.Info("joined gossip", zap.Strings("join", join))
+		}
+	}
+}
+
+// oneLine folds memberlist's multi-line errors.
+func oneLine(err error) string { return strings.Join(strings.Fields(err.Error()), " ") }
 
 // RobotMember is a robot's gossip name in a fleet.
 func RobotMember(fleet string, r int) string { return fmt.Sprintf("%s/robot-%d", fleet, r) }

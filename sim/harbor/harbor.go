@@ -140,10 +140,17 @@ func (m *Model) Start(dst model.State, rng *rand.Rand) {
 			s.Slicks[i] = m.Cell(p[0], p[1])
 		}
 	} else {
+		// Uniform over the cells without a boat (by rejection); when boats
+		// cover every cell (a tiny harbor), over all cells, and such a
+		// slick is collected at once.
+		free := false
+		for c := range cells {
+			free = free || !slices.Contains(s.Boats, int32(c))
+		}
 		for i := range s.Slicks {
 			for {
 				c := int32(rng.IntN(cells))
-				if !slices.Contains(s.Boats, c) {
+				if !free || !slices.Contains(s.Boats, c) {
 					s.Slicks[i] = c
 					break
 				}

@@ -205,3 +205,18 @@ func TestRandomTinyNotTrivial(t *testing.T) {
 		}
 	}
 }
+
+// Boats covering every cell must not stall the start (slicks then land on
+// boats and are collected at once).
+func TestStartWhenBoatsCoverTheGrid(t *testing.T) {
+	m := tiny(t, "width: 2\nheight: 1\nrobots: 2\nstarts: [[0,0],[1,0]]\nslicks: 1\n")
+	s := m.NewState()
+	m.Start(s, model.NewRNG(1).Rand)
+	if !m.Terminal(s) {
+		t.Fatal("a slick on a boat should be collected at the start")
+	}
+	sc := tiny(t, "width: 2\nheight: 1\nrobots: 2\nscatter: true\nslicks: 1\n")
+	for seed := uint64(1); seed <= 20; seed++ {
+		sc.Start(s, model.NewRNG(seed).Rand)
+	}
+}

@@ -1,0 +1,176 @@
+package learn
+
+import (
+	"errors"
+	"fmt"
+	"math"
+	"slices"
+
+	"baton/agentd/decide"
+	"baton/sim/episode"
+	"baton/sim/model"
+)
+
+// Dataset is imitation data: one sample per (state, robot) with the
+// features, the rollout's control and the controls valid there.
+type Dataset struct {
+	scenario string
+	version  string
+	robots   int
+	inputs   int
+	classes  int
+	episodes int // episodes the samples came from
+
+	x       []float64 // len*inputs
+	y       []int
+	valid   []bool // len*classes
+	episode []int  // episode index of each sample
+}
+
+// Len is the number of samples.
+func (d *Dataset) Len() int { return len(d.y) }
+
+// Inputs is the feature length of every sample.
+func (d *Dataset) Inputs() int { return d.inputs }
+
+// Classes is the number of control indices (the model's MaxControls).
+func (d *Dataset) Classes() int { return d.classes }
+
+// Episodes is the number of distinct episodes the samples came from.
+func (d *Dataset) Episodes() int { return d.episodes }
+
+// Scenario is the scenario the samples come from.
+func (d *Dataset) Scenario() string { return d.scenario }
+
+func (d *Dataset) row(i int) []float64 { return d.x[i*d.inputs : (i+1)*d.inputs] }
+func (d *Dataset) mask(i int) []bool   { return d.valid[i*d.classes : (i+1)*d.classes] }
+
+// Label is sample i's recorded control.
+func (d *Dataset) Label(i int) int { return d.y[i] }
+
+// ClassCounts is how often each control is the label.
+func (d *Dataset) ClassCounts() []int {
+	c := make([]int, d.classes)
+	for _, y := range d.y {
+		c[y]++
+	}
+	return c
+}
+
+// MajorityRate is the share of the most common label: the accuracy of the
+// best constant guess, the floor a classifier has to clear.
+func (d *Dataset) MajorityRate() float64 {
+	if d.Len() == 0 {
+		return 0
+	}
+	best := 0
+	for _, c := range d.ClassCounts() {
+		best = max(best, c)
+	}
+	return float64(best) / float64(d.Len())
+}
+
+func (d *Dataset) emptyLike() *Dataset {
+	return &Dataset{scenario: d.scenario, version: d.version, robots: d.robots, inputs: d.inputs, classes: d.classes}
+}
+
+func (d *Dataset) appendFrom(src *Dataset, i int) {
+	d.x = append(d.x, src.row(i)...)
+	d.y = append(d.y, src.y[i])
+	d.valid = append(d.valid, src.mask(i)...)
+	d.episode = append(d.episode, src.episode[i])
+}
+
+// Collect plays episodes seeded episodes of m under one-at-a-time rollout
+// with Monte Carlo effort p and records every robot's turn (robot k at
+// position k, order 0..m-1) as a sample. The rollout simulates with base's
+// base policy: base is m itself (nil means m) or m wrapped by AsBase, for
+// the next round of approximate policy iteration. Episode i uses
+// episode.Seed(seed, i) for its start, world and fleet seeds, so a run
+// replays exactly.
+func Collect(m model.Model, p decide.Config, episodes int, seed uint64, base model.Model) (*Dataset, error) {
+	if episodes < 1 {
+		return nil, errors.New("learn: Collect needs at least one episode")
+	}
+	if base == nil {
+		base = m
+	}
+	if base.Name() != m.Name() || base.Robots() != m.Robots() || base.MaxControls() != m.MaxControls() {
+		return nil, fmt.Errorf("learn: base model (%s, %d robots) does not match %s with %d robots",
+			base.Name(), base.Robots(), m.Name(), m.Robots())
+	}
+	f, err := FeaturizerFor(m)
+	if err != nil {
+		return nil, err
+	}
+	robots, classes, inputs := m.Robots(), m.MaxControls(), f.Size()
+	d := &Dataset{scenario: f.Scenario(), version: f.Version(), robots: robots, inputs: inputs, classes: classes, episodes: episodes}
+	dec := decide.New(base, p)
+	x := m.NewState()
+	u := make([]int, robots)
+	rng := model.NewRNG(0)
+	for ep := range episodes {
+		es := episode.Seed(seed, ep)
+		episode.Start(m, es, x)
+		fleet := episode.FleetSeed(es)
+		for step := 1; step <= m.Horizon() && !m.Terminal(x); step++ {
+			dec.OneAtATime(x, nil, fleet, step, u)
+			for k := range robots {
+				off := len(d.x)
+				d.x = slices.Grow(d.x, inputs)[:off+inputs]
+				f.Features(x, k, k, d.x[off:])
+				nc := m.NumControls(x, k)
+				for c := range classes {
+					d.valid = append(d.valid, c < nc)
+				}
+				if u[k] < 0 || u[k] >= nc {
+					return nil, fmt.Errorf("learn: rollout chose control %d of %d for robot %d", u[k], nc, k)
+				}
+				d.y = append(d.y, u[k])
+				d.episode = append(d.episode, ep)
+			}
+			rng.Reseed(episode.WorldSeed(es, step))
+			m.Step(x, u, rng.Rand)
+		}
+	}
+	return d, nil
+}
+
+// Split holds out whole episodes: about testFrac of them (at least one of
+// each side when there are two or more) chosen by seed, so test states come
+// from trajectories training never saw.
+func (d *Dataset) Split(testFrac float64, seed uint64) (train, test *Dataset) {
+	train, test = d.emptyLike(), d.emptyLike()
+	ids := map[int]bool{}
+	var eps []int
+	for _, e := range d.episode {
+		if !ids[e] {
+			ids[e] = true
+			eps = append(eps, e)
+		}
+	}
+	nTest := 0
+	if testFrac > 0 && len(eps) > 0 {
+		nTest = int(math.Round(testFrac * float64(len(eps))))
+		if len(eps) >= 2 {
+			nTest = min(max(nTest, 1), len(eps)-1)
+		} else {
+			nTest = min(nTest, 1)
+		}
+	}
+	rng := model.NewRNG(model.Mix(seed, 0x5eed))
+	rng.Shuffle(len(eps), func(i, j int) { eps[i], eps[j] = eps[j], eps[i] })
+	held := map[int]bool{}
+	for _, e := range eps[:nTest] {
+		held[e] = true
+	}
+	for i := range d.Len() {
+		if held[d.episode[i]] {
+			test.appendFrom(d, i)
+		} else {
+			train.appendFrom(d, i)
+		}
+	}
+	train.episodes, test.episodes = len(eps)-nTest, nTest
+	return train, test
+}

@@ -1,0 +1,187 @@
+package main
+
+import (
+	"encoding/json"
+	"fmt"
+	"os"
+	"strconv"
+	"strings"
+	"time"
+
+	"github.com/schollz/progressbar/v3"
+	"golang.org/x/term"
+
+	"baton/agentd/decide"
+	"baton/sim/episode"
+	"baton/sim/model"
+	"baton/signal/learn"
+)
+
+type trainRow struct {
+	Iteration     int     `json:"iteration"`
+	BaseCost      float64 `json:"base_cost"`
+	BaseCI95      float64 `json:"base_ci95"`
+	RolloutCost   float64 `json:"rollout_cost"`
+	RolloutCI95   float64 `json:"rollout_ci95"`
+	LearnedCost   float64 `json:"learned_cost"`
+	LearnedCI95   float64 `json:"learned_ci95"`
+	Accuracy      float64 `json:"test_accuracy"`
+	MajorityRate  float64 `json:"test_majority_rate"`
+	TrainAccuracy float64 `json:"train_accuracy"`
+	Samples       int     `json:"train_samples"`
+	CollectSecs   float64 `json:"collect_seconds"`
+	TrainSecs     float64 `json:"train_seconds"`
+	ModelBytes    int     `json:"model_bytes"`
+}
+
+type trainReport struct {
+	Scenario   string     `json:"scenario"`
+	Robots     int        `json:"robots"`
+	Features   string     `json:"feature_version"`
+	Iterations []trainRow `json:"iterations"`
+	Out        string     `json:"out,omitempty"`
+}
+
+func cmdTrain(args []string) error {
+	fs := newFlags("train", "Trains a classifier that imitates one-at-a-time rollout (the learned guess source)\nand, with --iterations K, repeats train-then-use-as-base: approximate policy\niteration. Each iteration collects rollout decisions on seeded episodes, trains\non some episodes and tests on the others, and evaluates on fresh episodes the\ncost of its base policy, of rollout on that base (the policy it imitates), and\nof the learned policy itself, with 95% confidence intervals.")
+	var sc scenarioFlags
+	sc.register(fs)
+	episodes := fs.Int("episodes", 30, "episodes of rollout decisions to learn from, per iteration")
+	testFrac := fs.Float64("test-frac", 0.25, "share of those episodes held out for testing")
+	evalEpisodes := fs.Int("eval-episodes", 20, "fresh episodes to evaluate each iteration's policies on")
+	iterations := fs.Int("iterations", 1, "train-then-use-as-base iterations")
+	seed := fs.Uint64("seed", 1, "seed (the same seed retrains the same model, byte for byte)")
+	samples := fs.Int("samples", 8, "Monte Carlo samples per Q-factor in the rollout that makes the labels")
+	horizon := fs.Int("horizon", 15, "base-policy steps simulated after the first step")
+	hidden := fs.String("hidden", "32", "hidden layer sizes, e.g. 32 or 64,32")
+	epochs := fs.Int("epochs", 30, "training epochs")
+	out := fs.String("out", "", "write the last iteration's model here (a versioned model file)")
+	asJSON := fs.Bool("json", false, "print one JSON object")
+	if err := parse(fs, args); err != nil {
+		return err
+	}
+	switch {
+	case *episodes < 2:
+		return fmt.Errorf("--episodes must be at least 2 (some to train on, some to test), got %d", *episodes)
+	case *testFrac <= 0 || *testFrac >= 1:
+		return fmt.Errorf("--test-frac must be between 0 and 1, got %g", *testFrac)
+	case *evalEpisodes < 2:
+		return fmt.Errorf("--eval-episodes must be at least 2 for a confidence interval, got %d", *evalEpisodes)
+	case *iterations < 1 || *iterations > 50:
+		return fmt.Errorf("--iterations must be between 1 and 50, got %d", *iterations)
+	case *samples < 1 || *horizon < 1 || *epochs < 1:
+		return fmt.Errorf("--samples, --horizon and --epochs must be at least 1")
+	}
+	var layers []int
+	for _, f := range strings.Split(*hidden, ",") {
+		v, err := strconv.Atoi(strings.TrimSpace(f))
+		if err != nil || v < 1 || v > 1024 {
+			return fmt.Errorf("--hidden %q: want one or two layer sizes from 1 to 1024", *hidden)
+		}
+		layers = append(layers, v)
+	}
+	if len(layers) > 2 {
+		return fmt.Errorf("--hidden %q: at most two layers", *hidden)
+	}
+	m, err := sc.load()
+	if err != nil {
+		return err
+	}
+	feat, err := learn.FeaturizerFor(m)
+	if err != nil {
+		return err
+	}
+	dcfg := decide.Config{Samples: *samples, Horizon: *horizon}
+	rep := trainReport{Scenario: m.Name(), Robots: m.Robots(), Features: feat.Version(), Out: *out}
+	var bar *progressbar.ProgressBar
+	if !*asJSON && term.IsTerminal(int(os.Stderr.Fd())) {
+		bar = progressbar.NewOptions(*iterations*4, progressbar.OptionSetWriter(os.Stderr),
+			progressbar.OptionSetDescription("train"), progressbar.OptionClearOnFinish())
+	}
+	step := func(what string) {
+		if bar != nil {
+			bar.Describe(what)
+			_ = bar.Add(1)
+		}
+	}
+	var base model.Model = m
+	var net *learn.Net
+	for it := 1; it <= *iterations; it++ {
+		itSeed := model.Mix(*seed, uint64(it))
+		t0 := time.Now()
+		step(fmt.Sprintf("iteration %d: collecting", it))
+		data, err := learn.Collect(m, dcfg, *episodes, itSeed, base)
+		if err != nil {
+			return err
+		}
+		collect := time.Since(t0)
+		train, test := data.Split(*testFrac, itSeed)
+		if train.Len() == 0 || test.Len() == 0 {
+			return fmt.Errorf("iteration %d: the split left no training or no test samples; raise --episodes", it)
+		}
+		step(fmt.Sprintf("iteration %d: training", it))
+		t1 := time.Now()
+		var tr learn.TrainReport
+		net, tr = learn.Train(feat, train, learn.TrainConfig{Hidden: layers, Epochs: *epochs, Seed: itSeed,
+			CreatedBy: fmt.Sprintf("sim train, iteration %d", it)})
+		trainTime := time.Since(t1)
+		acc := net.NoteHeldOut(test)
+		blob, err := net.Marshal(uint64(it))
+		if err != nil {
+			return err
+		}
+		row := trainRow{Iteration: it, Accuracy: acc, MajorityRate: test.MajorityRate(), TrainAccuracy: tr.TrainAccuracy,
+			Samples: train.Len(), CollectSecs: collect.Seconds(), TrainSecs: trainTime.Seconds(), ModelBytes: len(blob)}
+		// Fresh evaluation episodes, the same for every policy and iteration.
+		step(fmt.Sprintf("iteration %d: evaluating", it))
+		evalSeed := model.Mix(*seed, 0xe7a1)
+		learned := learn.AsBase(m, net)
+		d := decide.New(base, dcfg)
+		policies := []decide.Policy{decide.Base{M: base}, nil, decide.Base{M: learned}}
+		costs := make([][]float64, 3)
+		for i := range *evalEpisodes {
+			es := episode.Seed(evalSeed, i)
+			policies[1] = decide.OneAtATimePolicy{D: d, Seed: episode.FleetSeed(es)}
+			for p, pol := range policies {
+				res, err := episode.Run(m, pol, es, nil)
+				if err != nil {
+					return err
+				}
+				costs[p] = append(costs[p], res.Cost)
+			}
+		}
+		row.BaseCost, row.BaseCI95 = episode.MeanCI95(costs[0])
+		row.RolloutCost, row.RolloutCI95 = episode.MeanCI95(costs[1])
+		row.LearnedCost, row.LearnedCI95 = episode.MeanCI95(costs[2])
+		rep.Iterations = append(rep.Iterations, row)
+		step(fmt.Sprintf("iteration %d: done", it))
+		base = learned
+	}
+	if *out != "" {
+		if err := net.Save(*out, uint64(*iterations)); err != nil {
+			return fmt.Errorf("--out: %w", err)
+		}
+	}
+	if bar != nil {
+		_ = bar.Finish()
+	}
+	if *asJSON {
+		enc := json.NewEncoder(os.Stdout)
+		enc.SetIndent("", "  ")
+		return enc.Encode(rep)
+	}
+	fmt.Printf("%s, %d robots, features %s; costs are means over %d fresh episodes with 95%% CI\n\n",
+		rep.Scenario, rep.Robots, rep.Features, *evalEpisodes)
+	fmt.Printf("%4s  %16s  %16s  %16s  %9s  %8s  %8s  %9s  %7s\n", "iter", "base policy", "rollout on it", "learned policy",
+		"test acc", "majority", "samples", "train s", "bytes")
+	for _, r := range rep.Iterations {
+		fmt.Printf("%4d  %16s  %16s  %16s  %9.3f  %8.3f  %8d  %9.2f  %7d\n", r.Iteration,
+			fmt.Sprintf("%.2f ±%.2f", r.BaseCost, r.BaseCI95), fmt.Sprintf("%.2f ±%.2f", r.RolloutCost, r.RolloutCI95),
+			fmt.Sprintf("%.2f ±%.2f", r.LearnedCost, r.LearnedCI95), r.Accuracy, r.MajorityRate, r.Samples, r.TrainSecs, r.ModelBytes)
+	}
+	fmt.Println("\niteration i+1's base policy is iteration i's learned policy.")
+	if *out != "" {
+		fmt.Printf("model (version %d) written to %s\n", *iterations, *out)
+	}
+	return nil
+}
