@@ -12,9 +12,9 @@ import (
 	"golang.org/x/term"
 
 	"baton/agentd/decide"
+	"baton/signal/learn"
 	"baton/sim/episode"
 	"baton/sim/model"
-	"baton/signal/learn"
 )
 
 type trainRow struct {
