@@ -13,6 +13,7 @@ func cmdExact(args []string) error {
 	fs := newFlags("exact", "Enumerates a tiny fully observed instance and prints the exact discounted cost\nfrom its start state of the optimal policy (value iteration), the base policy,\nand all-at-once and one-at-a-time rollout with exact Q-factors.")
 	var sc scenarioFlags
 	sc.register(fs)
+	fs.Lookup("config").Usage = "tiny scenario YAML file (required; e.g. deploy/examples/harbor-tiny.yaml)"
 	maxStates := fs.Int("max-states", 20000, "refuse instances with more reachable states than this")
 	seed := fs.Uint64("seed", 1, "seed for scenarios whose start state is drawn at random")
 	asJSON := fs.Bool("json", false, "print one JSON object")

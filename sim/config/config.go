@@ -50,7 +50,10 @@ func ReadFile(path string, dst any) (*Doc, error) {
 	return Parse(path, data, dst)
 }
 
-var lineRe = regexp.MustCompile(`^(?:yaml: )?line (\d+): (.*)$`)
+var (
+	lineRe    = regexp.MustCompile(`^(?:yaml: )?line (\d+): (.*)$`)
+	unknownRe = regexp.MustCompile(`^field (\S+) not found in type \S+$`)
+)
 
 // Parse is ReadFile on bytes already read; name is used in messages.
 func Parse(name string, data []byte, dst any) (*Doc, error) {
@@ -86,7 +89,11 @@ func (d *Doc) wrapYAML(err error) error {
 		m = strings.TrimPrefix(m, "yaml: ")
 		if g := lineRe.FindStringSubmatch(m); g != nil {
 			msg := g[2]
-			msg = strings.Replace(msg, "not found in type", "is not a known field of", 1)
+			if f := unknownRe.FindStringSubmatch(msg); f != nil {
+				msg = fmt.Sprintf("unknown field %q (misspelt, or a file for another scenario?)", f[1])
+			}
+			msg = strings.Replace(msg, "cannot unmarshal !!str", "cannot read the text", 1)
+			msg = strings.Replace(msg, "cannot unmarshal !!float", "cannot read the number", 1)
 			out = append(out, fmt.Sprintf("%s:%s: %s", d.File, g[1], msg))
 			continue
 		}

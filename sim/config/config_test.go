@@ -38,7 +38,7 @@ func TestParseReportsLines(t *testing.T) {
 
 func TestParseErrors(t *testing.T) {
 	cases := []struct{ name, src, want string }{
-		{"unknown key", "name: a\ncolour: red\n", "f.yaml:2: field colour is not a known field of"},
+		{"unknown key", "name: a\ncolour: red\n", "f.yaml:2: unknown field \"colour\" (misspelt, or a file for another scenario?)"},
 		{"wrong type", "name: a\nitems: 3\n", "f.yaml:2:"},
 		{"syntax", "name: [a\n", "f.yaml:"},
 		{"empty", "", "f.yaml: file is empty"},

@@ -10,7 +10,7 @@ import (
 
 func TestBadFiles(t *testing.T) {
 	cases := []struct{ name, src, want string }{
-		{"unknown key", "width: 4\ncolour: blue\n", "h.yaml:2: field colour is not a known field of"},
+		{"unknown key", "width: 4\ncolour: blue\n", "h.yaml:2: unknown field \"colour\""},
 		{"wrong type", "width: wide\n", "h.yaml:1:"},
 		{"zero width", "width: 0\n", "h.yaml:1: width: must be between 1 and 1000, got 0"},
 		{"one cell", "width: 1\nheight: 1\n", "h.yaml:1: width: a 1 x 1 harbor has no room to move"},

@@ -60,9 +60,9 @@ func TestMalformedFiles(t *testing.T) {
 		src  string
 		want string
 	}{
-		{"unknown key", valid(nil, "colour: red"), "f.yaml:10: field colour is not a known field of"},
-		{"unknown site key", valid(map[int]string{5: "  - {name: b, hue: 3}"}), "f.yaml:5: field hue is not a known field of"},
-		{"wrong type", valid(map[int]string{1: "levels: many"}), "f.yaml:1: cannot unmarshal"},
+		{"unknown key", valid(nil, "colour: red"), "f.yaml:10: unknown field \"colour\""},
+		{"unknown site key", valid(map[int]string{5: "  - {name: b, hue: 3}"}), "f.yaml:5: unknown field \"hue\""},
+		{"wrong type", valid(map[int]string{1: "levels: many"}), "f.yaml:1: cannot read the text"},
 		{"levels missing", valid(map[int]string{1: "horizon: 5"}), "f.yaml:1: levels: missing"},
 		{"levels 0", valid(map[int]string{1: "levels: 0"}), "f.yaml:1: levels: must be between 1 and 8, got 0"},
 		{"levels 9", valid(map[int]string{1: "levels: 9"}), "f.yaml:1: levels: must be between 1 and 8, got 9"},
