@@ -15,6 +15,9 @@ import (
 // errUsage means the flag package already told the user what was wrong.
 var errUsage = errors.New("usage")
 
+// errInterrupted: the user stopped a run (Ctrl-C); exit 130 like a shell.
+var errInterrupted = errors.New("interrupted")
+
 func newFlags(name, synopsis string) *flag.FlagSet {
 	fs := flag.NewFlagSet("sim "+name, flag.ContinueOnError)
 	fs.Usage = func() {

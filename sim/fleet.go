@@ -22,6 +22,7 @@ import (
 	"github.com/nats-io/nats-server/v2/server"
 
 	"baton/agentd/node"
+	"baton/agentd/turn"
 	"baton/deploy/shell"
 	"baton/sim/episode"
 	"baton/sim/model"
@@ -105,6 +106,12 @@ func startFleet(ctx context.Context, o fleetOpts) (*fleetRun, error) {
 	if o.rounds < 1 {
 		return nil, fmt.Errorf("--rounds must be at least 1, got %d", o.rounds)
 	}
+	if _, ok := turn.ParseMode(o.mode); !ok {
+		return nil, fmt.Errorf("--mode %q: use sequential, parallel or hybrid", o.mode)
+	}
+	if o.turnDeadline <= 0 {
+		return nil, fmt.Errorf("--turn-deadline must be positive, got %s", o.turnDeadline)
+	}
 	for r := range o.slow {
 		if r >= m.Robots() {
 			return nil, fmt.Errorf("--slow %d=...: the fleet has robots 0..%d", r, m.Robots()-1)
@@ -187,6 +194,8 @@ func (f *fleetRun) spawn(name string, args []string) (*proc, error) {
 	}
 	cmd := exec.Command(f.o.exe, args...)
 	cmd.Stdout, cmd.Stderr = logf, logf
+	// Children die with the simulator, even when it is killed outright.
+	cmd.SysProcAttr = &syscall.SysProcAttr{Pdeathsig: syscall.SIGTERM}
 	if err := cmd.Start(); err != nil {
 		logf.Close()
 		return nil, fmt.Errorf("starting %s: %w", name, err)
@@ -355,10 +364,14 @@ func cmdFleet(args []string) error {
 	}
 	sum.LatencyP50Ms, sum.LatencyP99Ms = quantile(lat, 0.5), quantile(lat, 0.99)
 	f.close()
+	interrupted := ctx.Err() != nil
 	if *asJSON {
 		enc := json.NewEncoder(os.Stdout)
 		enc.SetIndent("", "  ")
-		return enc.Encode(sum)
+		if err := enc.Encode(sum); err != nil || !interrupted {
+			return err
+		}
+		return fmt.Errorf("%w after %d of %d rounds", errInterrupted, sum.Rounds, o.rounds)
 	}
 	fmt.Printf("\n%d rounds, total cost %.2f (%.3f per round), %d batches of slicks or tasks finished\n", sum.Rounds, sum.Cost, sum.CostPerRound, sum.Batches)
 	fmt.Printf("round latency p50 %.2f ms, p99 %.2f ms; turns decided with guesses %d; robot-rounds held %d\n",
@@ -367,6 +380,9 @@ func cmdFleet(args []string) error {
 		fmt.Printf("largest agentd resident memory %.1f MB\n", float64(sum.AgentdMaxRSS)/1024)
 	}
 	fmt.Printf("decision log %s\n", f.decisionLog())
+	if interrupted {
+		return fmt.Errorf("%w after %d of %d rounds", errInterrupted, sum.Rounds, o.rounds)
+	}
 	return nil
 }
 

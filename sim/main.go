@@ -6,6 +6,7 @@
 package main
 
 import (
+	"errors"
 	"fmt"
 	"os"
 
@@ -65,6 +66,10 @@ func run(args []string) int {
 	}
 	if err == errUsage {
 		return 2
+	}
+	if errors.Is(err, errInterrupted) {
+		fmt.Fprintln(os.Stderr, "sim:", err)
+		return 130
 	}
 	if err != nil {
 		fmt.Fprintln(os.Stderr, "sim:", err)
