@@ -1,34 +1,229 @@
 // Package signal provides guesses: stand-ins for predecessors' decisions
 // that did not arrive in time.
+//
+// Every guess source fills the same gap behind one interface: given what a
+// robot knows when its turn comes (the state, the round, the order, the
+// decisions it heard), write a control for each predecessor it did not hear.
+// The sources differ in what the stand-in costs and how much coordination
+// it keeps:
+//
+//   - base: the base policy's control (cheap; herds co-located robots)
+//   - last: the predecessor's control in the previous round
+//   - recompute: the predecessor's own rollout turn, recomputed here (exact
+//     when state and seeds are shared, at up to i times the compute)
+//   - learned: a trained imitation of the rollout policy
+//
+// Nothing here reads a clock: a time budget arrives as Context.Expired,
+// which the daemon backs with the wall clock and tests with a stub.
 package signal
 
 import (
 	"fmt"
+	"strings"
 
+	"baton/agentd/decide"
 	"baton/sim/model"
 )
 
-// Source guesses robot r's control in state x.
-type Source interface {
-	Name() string
-	Guess(x model.State, r int) int
+// Context is what a robot knows when it must guess.
+type Context struct {
+	X     model.State
+	Round uint64
+	Order []int  // this round's turn order (robot ids)
+	Robot int    // the robot that is deciding
+	Known []int  // per robot id: heard control, or -1
+	Last  []int  // per robot id: its control in the previous round (from RoundClose), or -1; nil: none known
+	Seed  uint64 // fleet seed: decide.TurnSeed(Seed, Round, r) is robot r's seed
+	// Decide is the fleet's Monte Carlo configuration: recompute must use
+	// exactly the effort the predecessor used to reproduce its choice.
+	Decide decide.Config
+	// Expired reports that recompute's time budget is spent; nil means
+	// unlimited.
+	Expired func() bool
 }
 
-// Base guesses the base policy's control: cheap, and what the robot would
-// assume of a successor anyway.
-type Base struct{ M model.Model }
+// Source fills in guesses for missing predecessors.
+type Source interface {
+	Name() string
+	// Fill writes a guess into out[j] for every j in missing (predecessors
+	// of c.Robot in turn order, listed in that order); out starts as a copy
+	// of c.Known. It must not change other entries of out, nor anything
+	// c refers to.
+	Fill(c *Context, missing []int, out []int)
+}
 
-func (Base) Name() string                     { return "base" }
-func (b Base) Guess(x model.State, r int) int { return b.M.Base(x, r) }
+// Classifier predicts robot r's rollout control in state x when r takes
+// turn k. It is all learned needs of a trained model, so this package does
+// not depend on how one is trained or stored.
+type Classifier interface {
+	Predict(x model.State, r, k int) int
+}
 
-// Names lists the guess sources this build knows.
-func Names() []string { return []string{"base"} }
+// Options configure New.
+type Options struct {
+	// Classifier backs learned (and recompute's default fallback); nil
+	// when no model is loaded.
+	Classifier Classifier
+	// Fallback fills recompute's remaining predecessors once the budget is
+	// spent; nil: learned when a Classifier is set, else base.
+	Fallback Source
+	// MaxRecompute caps the predecessors recompute recomputes per Fill,
+	// a budget in compute rather than time (0: no cap).
+	MaxRecompute int
+}
 
-// New returns the named guess source for m.
-func New(name string, m model.Model) (Source, error) {
+// Names lists the guess sources this build knows, cheapest first.
+func Names() []string { return []string{"base", "last", "recompute", "learned"} }
+
+// New returns the named guess source for m ("" means base).
+func New(name string, m model.Model, opts Options) (Source, error) {
 	switch name {
 	case "base", "":
 		return Base{M: m}, nil
+	case "last":
+		return Last{M: m}, nil
+	case "learned":
+		return Learned{M: m, C: opts.Classifier}, nil
+	case "recompute":
+		fb := opts.Fallback
+		if fb == nil {
+			fb = defaultFallback(m, opts.Classifier)
+		}
+		return NewRecompute(m, fb, opts.MaxRecompute), nil
 	}
-	return nil, fmt.Errorf("unknown guess source %q (known: base)", name)
+	return nil, fmt.Errorf("unknown guess source %q (known: %s)", name, strings.Join(Names(), ", "))
+}
+
+func defaultFallback(m model.Model, c Classifier) Source {
+	if c != nil {
+		return Learned{M: m, C: c}
+	}
+	return Base{M: m}
+}
+
+// valid reports whether c is a control of robot r in x.
+func valid(m model.Model, x model.State, r, c int) bool {
+	return c >= 0 && c < m.NumControls(x, r)
+}
+
+// position is r's index in order, or -1.
+func position(order []int, r int) int {
+	for k, o := range order {
+		if o == r {
+			return k
+		}
+	}
+	return -1
+}
+
+// Base guesses the base policy's control: cheap, and what the robot
+// assumes of its successors anyway.
+type Base struct{ M model.Model }
+
+func (Base) Name() string { return "base" }
+
+func (b Base) Fill(c *Context, missing []int, out []int) {
+	for _, j := range missing {
+		out[j] = b.M.Base(c.X, j)
+	}
+}
+
+// Last guesses that a predecessor repeats its previous round's control.
+// Controls are indices into a robot's current options, so a control that
+// is no longer valid in this round's state (upkeep: the robot moved to a
+// site with fewer roads) is adapted to the base control, and so is a robot
+// with no previous control (first round, held, or a round not seen).
+type Last struct{ M model.Model }
+
+func (Last) Name() string { return "last" }
+
+func (l Last) Fill(c *Context, missing []int, out []int) {
+	for _, j := range missing {
+		if j < len(c.Last) && valid(l.M, c.X, j, c.Last[j]) {
+			out[j] = c.Last[j]
+		} else {
+			out[j] = l.M.Base(c.X, j)
+		}
+	}
+}
+
+// Learned guesses with a classifier imitating the rollout policy. With no
+// classifier, or a prediction that is not a valid control, it guesses base.
+type Learned struct {
+	M model.Model
+	C Classifier
+}
+
+func (Learned) Name() string { return "learned" }
+
+// Loaded reports whether a classifier is set (otherwise guesses are base).
+func (l Learned) Loaded() bool { return l.C != nil }
+
+func (l Learned) Fill(c *Context, missing []int, out []int) {
+	for _, j := range missing {
+		k := position(c.Order, j)
+		if l.C != nil && k >= 0 {
+			if u := l.C.Predict(c.X, j, k); valid(l.M, c.X, j, u) {
+				out[j] = u
+				continue
+			}
+		}
+		out[j] = l.M.Base(c.X, j)
+	}
+}
+
+// Recompute recomputes each missing predecessor's one-at-a-time rollout
+// turn: predecessor j decided knowing every robot before it in the order
+// (heard here, or recomputed just before) with the robots after it at base,
+// using its own seed, so with the same state, seeds and Decide the guess is
+// j's real decision. A robot at turn i pays up to i extra turns of compute;
+// once Context.Expired reports true (checked before each predecessor) or
+// MaxRecompute is reached, the remaining predecessors go to the fallback.
+//
+// It keeps one Decider (rebuilt only when Context.Decide changes) so a turn
+// allocates nothing; it is therefore not safe for concurrent use. The
+// daemon calls it from its event loop only.
+type Recompute struct {
+	m        model.Model
+	fallback Source
+	max      int
+
+	d     *decide.Decider
+	cfg   decide.Config
+	known []int
+}
+
+// NewRecompute returns recompute for m; fallback must not be nil.
+func NewRecompute(m model.Model, fallback Source, maxRecompute int) *Recompute {
+	return &Recompute{m: m, fallback: fallback, max: maxRecompute, known: make([]int, m.Robots())}
+}
+
+func (*Recompute) Name() string { return "recompute" }
+
+// Fallback is the source used once the budget is spent.
+func (r *Recompute) Fallback() Source { return r.fallback }
+
+func (r *Recompute) Fill(c *Context, missing []int, out []int) {
+	for i, j := range missing {
+		if (c.Expired != nil && c.Expired()) || (r.max > 0 && i >= r.max) {
+			r.fallback.Fill(c, missing[i:], out)
+			return
+		}
+		k := position(c.Order, j)
+		if k < 0 {
+			// Not a predecessor after all: nothing to reproduce.
+			r.fallback.Fill(c, missing[i:i+1], out)
+			continue
+		}
+		if r.d == nil || c.Decide != r.cfg {
+			r.d, r.cfg = decide.New(r.m, c.Decide), c.Decide
+		}
+		for p := range r.known {
+			r.known[p] = -1
+		}
+		for _, p := range c.Order[:k] {
+			r.known[p] = out[p]
+		}
+		out[j], _ = r.d.Turn(c.X, j, r.known, decide.TurnSeed(c.Seed, int(c.Round), j))
+	}
 }

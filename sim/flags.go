@@ -35,7 +35,7 @@ func parse(fs *flag.FlagSet, args []string) error {
 		return errUsage
 	}
 	if fs.NArg() > 0 {
-		fmt.Fprintf(fs.Output(), "sim %s: unexpected argument %q\n", fs.Name(), fs.Arg(0))
+		fmt.Fprintf(fs.Output(), "%s: unexpected argument %q\n", fs.Name(), fs.Arg(0))
 		return errUsage
 	}
 	return nil

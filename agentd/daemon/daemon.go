@@ -25,6 +25,7 @@ import (
 	"baton/deploy/shell"
 	pb "baton/proto"
 	bsignal "baton/signal"
+	"baton/signal/learn"
 	"baton/sim/model"
 	"baton/sim/scenarios"
 )
@@ -56,7 +57,9 @@ func Main(args []string) int {
 	httpAddr := fs.String("http", "127.0.0.1:7400", "local interface for the robot's software (localhost only by default)")
 	gossip := fs.String("gossip", "127.0.0.1:0", "gossip bind host:port (port 0 picks one)")
 	join := fs.String("join", "", "gossip address(es) of the coordinator or any member, comma-separated")
-	guess := fs.String("guess", "base", "guess source for missing predecessors: "+strings.Join(bsignal.Names(), ", "))
+	guess := fs.String("guess", "base", "fallback guess source, used when a round start names none or one this robot cannot make: "+
+		strings.Join(bsignal.Names(), ", ")+" (the coordinator's --guess picks the fleet's)")
+	guessModel := fs.String("guess-model", "", "trained guess model file (signal/learn) for learned guesses; without one they are base guesses")
 	delay := fs.Duration("inject-delay", 0, "fault injection: hold back this robot's decisions by this long")
 	stale := fs.Duration("stale", 10*time.Second, "hold when no round has started for this long")
 	connectTimeout := fs.Duration("connect-timeout", 30*time.Second, "keep retrying an unreachable NATS server this long")
@@ -102,9 +105,21 @@ func Main(args []string) int {
 	if err != nil {
 		return fail(err)
 	}
-	src, err := bsignal.New(*guess, m)
+	// Without a guess model learned guesses are base guesses: the node
+	// says so once when it first needs one.
+	var guessOpts bsignal.Options
+	if *guessModel != "" {
+		net, meta, err := learn.Load(*guessModel, m)
+		if err != nil {
+			return fail(fmt.Errorf("--guess-model: %w", err))
+		}
+		guessOpts.Classifier = net
+		lg.Info("guess model loaded", zap.String("file", *guessModel), zap.Uint64("version", meta.Version),
+			zap.Int("trained_robots", meta.RobotsTrained), zap.Float64("test_accuracy", meta.TestAccuracy))
+	}
+	src, err := bsignal.New(*guess, m, guessOpts)
 	if err != nil {
-		return fail(err)
+		return fail(fmt.Errorf("--guess: %w", err))
 	}
 	ln, err := net.Listen("tcp", *httpAddr)
 	if err != nil {
@@ -132,7 +147,7 @@ func Main(args []string) int {
 	reg := prometheus.NewRegistry()
 	reg.MustRegister(collectors.NewGoCollector(), collectors.NewProcessCollector(collectors.ProcessCollectorOpts{}))
 	n := node.New(node.Config{Fleet: *fleet, Subjects: subj, Robot: *robot, Sender: sender, Model: fm, Digest: digest,
-		Guess: src, InjectDelay: *delay, Stale: *stale, Log: lg, Metrics: node.NewMetrics(reg)}, nc)
+		Guess: src, Guesses: guessOpts, InjectDelay: *delay, Stale: *stale, Log: lg, Metrics: node.NewMetrics(reg)}, nc)
 	ctx, stop := signal.NotifyContext(context.Background(), os.Interrupt, syscall.SIGTERM)
 	defer stop()
 	srv := &http.Server{Handler: n.Handler(reg), ReadHeaderTimeout: 5 * time.Second}

@@ -39,12 +39,18 @@ type Rollout struct {
 func (r *Rollout) Turn(x model.State, robot int, known []int, seed uint64, p *pb.DecideParams) int {
 	r.mu.Lock()
 	defer r.mu.Unlock()
-	cfg := decide.Config{Samples: int(p.GetSamples()), Horizon: int(p.GetHorizon()), TerminalCost: p.GetTerminalCost()}
+	cfg := decideConfig(p)
 	if r.d == nil || cfg != r.params {
 		r.d, r.params = decide.New(r.M, cfg), cfg
 	}
 	c, _ := r.d.Turn(x, robot, known, seed)
 	return c
+}
+
+// decideConfig is the fleet's Monte Carlo effort as decide takes it: the
+// robot's own turn and recompute's guesses must use the same.
+func decideConfig(p *pb.DecideParams) decide.Config {
+	return decide.Config{Samples: int(p.GetSamples()), Horizon: int(p.GetHorizon()), TerminalCost: p.GetTerminalCost()}
 }
 
 // Config of one robot's daemon.
@@ -58,8 +64,17 @@ type Config struct {
 	Digest string
 	// Compute is nil for the real rollout.
 	Compute Computer
-	// Guess fills in predecessors that did not arrive in time (nil: base).
+	// Guess is the fallback guess source: used when a round start names
+	// none, or names one this robot cannot make (learned without a
+	// classifier, or a name this build does not know). nil: base. The
+	// source a round start names is built from Guesses.
 	Guess signal.Source
+	// Guesses configures the sources round starts name (the classifier
+	// for learned, recompute's fallback).
+	Guesses signal.Options
+	// GuessMargin is what recompute leaves before this robot's own turn
+	// deadline, besides the measured hop and its own turn (default 2ms).
+	GuessMargin time.Duration
 	// InjectDelay holds back this robot's own decision publishes: fault
 	// injection in our own message layer, for drills and tests.
 	InjectDelay time.Duration
@@ -102,6 +117,16 @@ type Node struct {
 	params    *pb.DecideParams
 	roundAt   time.Duration
 	mode      turn.Mode
+	order     []int
+	deadlines []time.Duration
+	guessName string                   // the current round's guess source, as named
+	sources   map[string]signal.Source // built on first use; only the loop uses them
+	saidBase  bool                     // logged that unloaded learned guesses are base
+	turnTook  time.Duration            // this robot's last turn compute, what recompute must leave for it
+	// The last closed round and its controls, -1 for held robots: the
+	// last source's input.
+	closed    uint64
+	closedCtl []int
 	pending   map[uint64]pending
 	lateSeen  uint64
 	loggedBad map[string]bool
@@ -115,8 +140,11 @@ type Node struct {
 }
 
 type pending struct {
-	x      model.State
-	params *pb.DecideParams
+	x         model.State
+	params    *pb.DecideParams
+	order     []int
+	deadlines []time.Duration
+	guess     string
 }
 
 type roundMsg struct {
@@ -133,6 +161,9 @@ func New(cfg Config, nc *nats.Conn) *Node {
 	if cfg.Guess == nil {
 		cfg.Guess = signal.Base{M: cfg.Model}
 	}
+	if cfg.GuessMargin <= 0 {
+		cfg.GuessMargin = 2 * time.Millisecond
+	}
 	if cfg.Stale <= 0 {
 		cfg.Stale = 10 * time.Second
 	}
@@ -147,6 +178,8 @@ func New(cfg Config, nc *nats.Conn) *Node {
 		machine:   turn.New(turn.Config{Fleet: cfg.Fleet, Robot: cfg.Robot, Robots: cfg.Model.Robots(), Sender: cfg.Sender}),
 		pending:   map[uint64]pending{},
 		loggedBad: map[string]bool{},
+		sources:   map[string]signal.Source{},
+		closedCtl: make([]int, cfg.Model.Robots()),
 		views:     map[uint64]*View{},
 		changed:   make(chan struct{}),
 	}
@@ -262,11 +295,12 @@ func (n *Node) onRound(ev roundMsg) {
 		controls[j] = m.NumControls(x, j)
 	}
 	before := n.machine.Round()
-	n.pending[rs.GetRound()] = pending{x: x, params: rs.GetParams()}
+	n.pending[rs.GetRound()] = pending{x: x, params: rs.GetParams(), order: order, deadlines: deadlines, guess: rs.GetGuessSource()}
 	acts := n.machine.Step(turn.Round{Now: ev.at, Round: rs.GetRound(), Order: order, Deadlines: deadlines, Mode: mode, Controls: controls})
 	if r := n.machine.Round(); r != before && r == rs.GetRound() {
 		p := n.pending[r]
 		n.x, n.params, n.roundAt, n.mode = p.x, p.params, ev.at, mode
+		n.order, n.deadlines, n.guessName = p.order, p.deadlines, p.guess
 		n.cfg.Metrics.Rounds.Inc()
 		if n.cfg.OnRound != nil {
 			n.cfg.OnRound(r, n.epoch.Add(ev.at))
@@ -303,6 +337,17 @@ func (n *Node) onClose(data []byte) {
 	if len(rc.GetControls()) != n.cfg.Model.Robots() {
 		n.drop(turn.DropMalformed, rc.GetSender(), fmt.Sprintf("round close with %d controls for %d robots", len(rc.GetControls()), n.cfg.Model.Robots()))
 		return
+	}
+	if r := rc.GetRound(); r > n.closed {
+		n.closed = r
+		for j, c := range rc.GetControls() {
+			n.closedCtl[j] = int(c)
+		}
+		for _, h := range rc.GetHeld() {
+			if int(h) < len(n.closedCtl) {
+				n.closedCtl[h] = -1 // held: it decided nothing
+			}
+		}
 	}
 	n.mu.Lock()
 	defer n.mu.Unlock()
@@ -373,8 +418,8 @@ func (n *Node) apply(acts []turn.Action) {
 func (n *Node) compute(c turn.Compute) {
 	x, params := n.x, n.params
 	known := slices.Clone(c.Known)
-	for _, j := range c.Guess {
-		known[j] = n.cfg.Guess.Guess(x, j)
+	if len(c.Guess) > 0 {
+		n.guess(c, known)
 	}
 	seed := decide.TurnSeed(params.GetFleetSeed(), int(c.Round), n.cfg.Robot)
 	// The turn runs on the loop goroutine: handing it to another goroutine
@@ -384,8 +429,74 @@ func (n *Node) compute(c turn.Compute) {
 	t0 := time.Now()
 	ctl := n.cfg.Compute.Turn(x, n.cfg.Robot, known, seed, params)
 	took := time.Since(t0)
+	n.turnTook = took
 	n.cfg.Metrics.Compute.Observe(took.Seconds())
 	n.apply(n.machine.Step(turn.Computed{Now: n.now(), Round: c.Round, Control: ctl, Took: took}))
+}
+
+// guess fills known's missing predecessors from the round's guess source.
+func (n *Node) guess(c turn.Compute, known []int) {
+	src := n.source(n.guessName)
+	ctx := &signal.Context{X: n.x, Round: c.Round, Order: n.order, Robot: n.cfg.Robot, Known: c.Known,
+		Last: n.last(c.Round), Seed: n.params.GetFleetSeed(), Decide: decideConfig(n.params)}
+	if k := slices.Index(n.order, n.cfg.Robot); k >= 0 && k < len(n.deadlines) {
+		// Stop recomputing once one more recompute and this robot's own
+		// turn (each about turnTook) no longer fit before its deadline,
+		// less the hop that delivers the decision and a margin.
+		due := n.roundAt + n.deadlines[k] - n.cfg.GuessMargin - time.Duration(n.hop.Load())
+		ctx.Expired = func() bool { return n.now()+2*n.turnTook >= due }
+	}
+	src.Fill(ctx, c.Guess, known)
+}
+
+// last is every robot's control in the round before r, -1 where it held
+// or when that round's close was not seen.
+func (n *Node) last(r uint64) []int {
+	if n.closed == 0 || n.closed+1 != r {
+		return nil
+	}
+	return n.closedCtl // sources only read the Context
+}
+
+// source is the guess source a round start names, or the fallback when it
+// names none or one this robot cannot make; each substitution is logged
+// once per name.
+func (n *Node) source(name string) signal.Source {
+	fb := n.cfg.Guess
+	if name == "" || name == fb.Name() {
+		return n.unloaded(fb)
+	}
+	if s, ok := n.sources[name]; ok {
+		return s
+	}
+	why := ""
+	if name == "learned" && n.cfg.Guesses.Classifier == nil {
+		why = "no classifier loaded"
+	}
+	var s signal.Source
+	if why == "" {
+		var err error
+		if s, err = signal.New(name, n.cfg.Model, n.cfg.Guesses); err != nil {
+			why = err.Error()
+		}
+	}
+	if why != "" {
+		n.cfg.Log.Warn("the round start names a guess source this robot cannot make; using the fallback (--guess)",
+			zap.String("named", name), zap.String("fallback", fb.Name()), zap.String("why", why))
+		s = fb
+	}
+	n.sources[name] = s
+	return n.unloaded(s)
+}
+
+// unloaded says once that learned guesses are base guesses while no
+// classifier is loaded.
+func (n *Node) unloaded(s signal.Source) signal.Source {
+	if l, ok := s.(signal.Learned); ok && !l.Loaded() && !n.saidBase {
+		n.saidBase = true
+		n.cfg.Log.Warn("no classifier loaded: learned guesses are the base policy's")
+	}
+	return s
 }
 
 func (n *Node) publish(d *pb.Decision) {

@@ -5,6 +5,7 @@ import (
 	"encoding/json"
 	"net/http"
 	"net/http/httptest"
+	"slices"
 	"strings"
 	"testing"
 	"time"
@@ -16,8 +17,10 @@ import (
 	"go.uber.org/zap/zaptest/observer"
 	"google.golang.org/protobuf/proto"
 
+	"baton/agentd/decide"
 	"baton/deploy/shell"
 	pb "baton/proto"
+	"baton/signal"
 	"baton/sim/harbor"
 	"baton/sim/model"
 )
@@ -41,7 +44,10 @@ type rig struct {
 
 // newRig runs robot 1 of a 4-boat harbor fleet on a real, embedded NATS
 // server and gives the test its own connection to poke it with.
-func newRig(t *testing.T) *rig {
+func newRig(t *testing.T) *rig { return newRigWith(t, nil) }
+
+// newRigWith is newRig with the node's config adjusted by with.
+func newRigWith(t *testing.T, with func(*Config)) *rig {
 	t.Helper()
 	ns, url, err := shell.EmbeddedNATS("127.0.0.1", 0)
 	if err != nil {
@@ -60,8 +66,12 @@ func newRig(t *testing.T) *rig {
 	subj, _ := pb.NewSubjects("baton", "yard")
 	core, logs := observer.New(zap.InfoLevel)
 	met := NewMetrics(prometheus.NewRegistry())
-	n := New(Config{Fleet: "yard", Subjects: subj, Robot: 1, Sender: "robot-1", Model: m, Digest: "d1",
-		Compute: fixed(harbor.East), Log: zap.New(core), Metrics: met}, connect())
+	cfg := Config{Fleet: "yard", Subjects: subj, Robot: 1, Sender: "robot-1", Model: m, Digest: "d1",
+		Compute: fixed(harbor.East), Log: zap.New(core), Metrics: met}
+	if with != nil {
+		with(&cfg)
+	}
+	n := New(cfg, connect())
 	ctx, cancel := context.WithCancel(context.Background())
 	t.Cleanup(cancel)
 	go n.Run(ctx)
@@ -244,5 +254,117 @@ func TestLocalInterface(t *testing.T) {
 		}
 	case <-time.After(5 * time.Second):
 		t.Fatal("observation not relayed")
+	}
+}
+
+// recording is a stub Computer that hands the test what it was asked with.
+type recording chan []int
+
+func (c recording) Turn(_ model.State, _ int, known []int, _ uint64, _ *pb.DecideParams) int {
+	c <- slices.Clone(known)
+	return harbor.East
+}
+
+// The fleet's guess source comes from the round start: naming last makes
+// robot 1, which does not hear robot 0, use robot 0's control of the
+// previous round (base when it held or that round's close was not seen);
+// naming none, or one the robot cannot make, uses its --guess fallback.
+func TestGuessSourceFromRoundStart(t *testing.T) {
+	asked := make(recording, 1)
+	r := newRigWith(t, func(c *Config) { c.Compute = asked })
+	base := r.m.Base(r.x, 0)
+	other := (base + 1) % 5 // a control robot 0's base guess would not give
+	params := &pb.DecideParams{Samples: 2, Horizon: 2, FleetSeed: 1}
+	d := decide.New(r.m, decideConfig(params))
+	recomputed := func(round int) int {
+		c, _ := d.Turn(r.x, 0, []int{-1, -1, -1, -1}, decide.TurnSeed(1, round, 0))
+		return c
+	}
+
+	guessOf0 := func(round uint64, guess string, mode pb.Mode, deadlines []uint64) int {
+		t.Helper()
+		r.start(round, []uint32{0, 1}, func(rs *pb.RoundStart) {
+			rs.GuessSource, rs.Mode, rs.Params = guess, mode, params
+			if deadlines != nil {
+				rs.DeadlinesUs = deadlines
+			}
+		})
+		select {
+		case known := <-asked:
+			return known[0]
+		case <-time.After(5 * time.Second):
+			t.Fatalf("round %d: robot 1 never computed", round)
+		}
+		return -1
+	}
+	closeRound := func(round uint64, ctl0 int32, held []uint32) {
+		t.Helper()
+		r.pub(r.subj.Close, &pb.RoundClose{Fleet: "yard", Round: round, Sender: "coordinator",
+			Controls: []int32{ctl0, harbor.East, 0, 0}, Held: held})
+		if v := r.n.Decision(context.Background(), round, 5*time.Second, true); !v.Closed {
+			t.Fatalf("round %d did not close", round)
+		}
+	}
+	hybrid := []uint64{1000, 10e6} // robot 0 is silent: robot 1 guesses after 1ms
+
+	if got := guessOf0(1, "last", pb.Mode_MODE_HYBRID, hybrid); got != base {
+		t.Errorf("last with no previous round: guessed %d, want base %d", got, base)
+	}
+	closeRound(1, int32(other), nil)
+	if got := guessOf0(2, "last", pb.Mode_MODE_HYBRID, hybrid); got != other {
+		t.Errorf("last: guessed %d, want robot 0's previous control %d", got, other)
+	}
+	closeRound(2, 0, []uint32{0})
+	if got := guessOf0(3, "last", pb.Mode_MODE_PARALLEL, nil); got != base {
+		t.Errorf("last after robot 0 held: guessed %d, want base %d", got, base)
+	}
+	closeRound(3, int32(other), nil)
+	// Round 5 follows round 3's close, not round 4's: nothing to repeat.
+	if got := guessOf0(5, "last", pb.Mode_MODE_PARALLEL, nil); got != base {
+		t.Errorf("last with the previous round's close unseen: guessed %d, want base %d", got, base)
+	}
+	closeRound(5, int32(other), nil)
+	if got := guessOf0(6, "", pb.Mode_MODE_PARALLEL, nil); got != base {
+		t.Errorf("no source named: guessed %d, want the fallback's (base) %d", got, base)
+	}
+	for _, name := range []string{"learned", "learned", "oracle"} {
+		round := r.n.latestRound() + 1
+		if got := guessOf0(round, name, pb.Mode_MODE_PARALLEL, nil); got != base {
+			t.Errorf("%s (cannot make): guessed %d, want the fallback's %d", name, got, base)
+		}
+	}
+	if n := r.logs.FilterMessageSnippet("cannot make").Len(); n != 2 {
+		t.Errorf("logged %d substitutions, want one per name (learned, oracle)", n)
+	}
+	// Recompute reproduces robot 0's own turn (same state, seed, effort)...
+	if got, want := guessOf0(10, "recompute", pb.Mode_MODE_PARALLEL, nil), recomputed(10); got != want {
+		t.Errorf("recompute guessed %d, robot 0's turn gives %d", got, want)
+	}
+	// ...unless its own deadline leaves no time: then its fallback, base.
+	if got := guessOf0(11, "recompute", pb.Mode_MODE_PARALLEL, []uint64{1, 2}); got != base {
+		t.Errorf("recompute past the deadline guessed %d, want the fallback's (base) %d", got, base)
+	}
+	if recomputed(10) == base || recomputed(11) == base {
+		t.Errorf("recompute and base agree in round 10 or 11: pick rounds where they differ")
+	}
+}
+
+// A fallback of learned with no classifier guesses base and says so once.
+func TestUnloadedLearnedFallback(t *testing.T) {
+	asked := make(recording, 1)
+	r := newRigWith(t, func(c *Config) { c.Compute, c.Guess = asked, signal.Learned{M: c.Model} })
+	for round := uint64(1); round <= 2; round++ {
+		r.start(round, []uint32{0, 1}, func(rs *pb.RoundStart) { rs.Mode = pb.Mode_MODE_PARALLEL })
+		select {
+		case known := <-asked:
+			if want := r.m.Base(r.x, 0); known[0] != want {
+				t.Fatalf("round %d: guessed %d, want base %d", round, known[0], want)
+			}
+		case <-time.After(5 * time.Second):
+			t.Fatalf("round %d: robot 1 never computed", round)
+		}
+	}
+	if n := r.logs.FilterMessageSnippet("no classifier loaded").Len(); n != 1 {
+		t.Fatalf("said %d times that learned guesses are base, want once", n)
 	}
 }

@@ -31,7 +31,9 @@ type Config struct {
 	Digest   string
 	Params   *pb.DecideParams
 	Mode     turn.Mode
-	Guess    string
+	// Guess names the fleet's guess source (signal.Names), sent in every
+	// round start; robots that cannot make it use their own fallback.
+	Guess string
 	// TurnBudget is the time each turn gets: turn k is due (k+1) x TurnBudget
 	// after the round starts.
 	TurnBudget time.Duration

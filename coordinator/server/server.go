@@ -13,6 +13,7 @@ import (
 	"net/http"
 	"os"
 	"os/signal"
+	"slices"
 	"strconv"
 	"strings"
 	"syscall"
@@ -27,6 +28,7 @@ import (
 	"baton/coordinator/hub"
 	"baton/deploy/shell"
 	pb "baton/proto"
+	bsignal "baton/signal"
 	"baton/sim/model"
 	"baton/sim/scenarios"
 )
@@ -57,6 +59,7 @@ func Main(args []string) int {
 	horizon := fs.Int("horizon", 20, "base-policy steps simulated after the first step")
 	termCost := fs.Bool("terminal-cost", false, "add the scenario's cost-to-go estimate at truncation")
 	modeName := fs.String("mode", "hybrid", "sequential, parallel or hybrid")
+	guess := fs.String("guess", "base", "the fleet's guess source for missing predecessors: "+strings.Join(bsignal.Names(), ", "))
 	autoParallel := fs.Bool("auto-parallel", false, "switch rounds to parallel when measured links are too slow for --period")
 	turnDeadline := fs.Duration("turn-deadline", 200*time.Millisecond, "time each turn gets; turn k is due (k+1) x this after the round starts")
 	period := fs.Duration("period", 0, "start rounds at most this often (0: as soon as the previous round's reports are in)")
@@ -93,6 +96,9 @@ func Main(args []string) int {
 	mode, ok := turn.ParseMode(*modeName)
 	if !ok {
 		return fail(fmt.Errorf("--mode %q: use sequential, parallel or hybrid", *modeName))
+	}
+	if !slices.Contains(bsignal.Names(), *guess) {
+		return fail(fmt.Errorf("--guess %q: use one of %s", *guess, strings.Join(bsignal.Names(), ", ")))
 	}
 	if *turnDeadline <= 0 {
 		return fail(fmt.Errorf("--turn-deadline must be positive, got %s", *turnDeadline))
@@ -162,7 +168,7 @@ func Main(args []string) int {
 	if h == 0 {
 		h = -1 // 0 means "first step only" on the wire, not decide's default
 	}
-	cfg := hub.Config{Fleet: *fleet, Subjects: subj, Model: fm, Digest: digest, Mode: mode, Guess: "base",
+	cfg := hub.Config{Fleet: *fleet, Subjects: subj, Model: fm, Digest: digest, Mode: mode, Guess: *guess,
 		Params:     &pb.DecideParams{Samples: uint32(*samples), Horizon: h, TerminalCost: *termCost, FleetSeed: *seed},
 		TurnBudget: *turnDeadline, Period: *period, Rounds: *rounds, ReportWait: *reportWait, Order: order,
 		Alive: func() []int { return shell.AliveRobots(ml, *fleet) }, AutoParallel: *autoParallel,
@@ -194,7 +200,7 @@ func Main(args []string) int {
 	go func() { _ = srv.Serve(ln) }()
 	defer srv.Close()
 	lg.Info("coordinator up", zap.String("fleet", *fleet), zap.String("scenario", m.Name()), zap.Int("robots", m.Robots()),
-		zap.String("nats", nc.ConnectedUrl()), zap.String("gossip", *gossip), zap.String("mode", mode.String()), zap.String("digest", digest))
+		zap.String("nats", nc.ConnectedUrl()), zap.String("gossip", *gossip), zap.String("mode", mode.String()), zap.String("guess", *guess), zap.String("digest", digest))
 	if err := hub.New(cfg, nc).Run(ctx); err != nil && !errors.Is(err, context.Canceled) {
 		return fail(err)
 	}
