@@ -1,0 +1,173 @@
+// Package herding_test measures the herding case of signaling: boats that
+// all launch from one dock and decide in parallel. With base-policy guesses
+// every boat assumes the others follow the base policy, makes the same best
+// response, and the group chases one slick after another; guesses from a
+// learned imitation of the rollout policy should keep most of the
+// sequential (one-at-a-time) coordination.
+package herding_test
+
+import (
+	"fmt"
+	"math"
+	"os"
+	"testing"
+	"time"
+
+	"gonum.org/v1/gonum/stat"
+
+	"baton/agentd/decide"
+	"baton/signal"
+	"baton/signal/learn"
+	"baton/sim/episode"
+	"baton/sim/harbor"
+	"baton/sim/model"
+)
+
+// effort is the fleet's Monte Carlo effort for training and for play.
+var effort = decide.Config{Samples: 8, Horizon: 15}
+
+const (
+	trainSeed = 101 // training episodes; evaluation uses other seeds
+	evalSeed  = 202
+)
+
+// fleet plays harbor episodes.
+type fleet struct {
+	m     model.Model
+	d     *decide.Decider
+	order []int
+	none  []int // nothing heard: all -1
+	known []int
+	u     []int
+}
+
+// way is how the fleet decides a step.
+type way struct {
+	sequential bool          // one-at-a-time rollout: every predecessor heard
+	guess      signal.Source // parallel: every predecessor guessed by this
+	// neither: the base policy, no rollout (for reference)
+}
+
+// decideJoint writes this step's joint control into f.u.
+func (f *fleet) decideJoint(x model.State, step int, fleetSeed uint64, w way) {
+	switch {
+	case w.sequential:
+		f.d.OneAtATime(x, f.order, fleetSeed, step, f.u)
+	case w.guess != nil:
+		for k, r := range f.order {
+			c := &signal.Context{X: x, Round: uint64(step), Order: f.order, Robot: r, Known: f.none,
+				Seed: fleetSeed, Decide: effort}
+			copy(f.known, f.none)
+			w.guess.Fill(c, f.order[:k], f.known)
+			f.u[r], _ = f.d.Turn(x, r, f.known, decide.TurnSeed(fleetSeed, step, r))
+		}
+	default:
+		model.BaseJoint(f.m, x, f.u)
+	}
+}
+
+// play is one episode's discounted cost; every way of deciding sees the
+// same start, world disturbances and fleet seed for an episode seed.
+func (f *fleet) play(es uint64, w way) float64 {
+	m := f.m
+	x := m.NewState()
+	episode.Start(m, es, x)
+	fleetSeed := episode.FleetSeed(es)
+	rng := model.NewRNG(0)
+	cost, disc := 0.0, 1.0
+	for step := 1; step <= m.Horizon() && !m.Terminal(x); step++ {
+		f.decideJoint(x, step, fleetSeed, w)
+		rng.Reseed(episode.WorldSeed(es, step))
+		cost += disc * m.Step(x, f.u, rng.Rand)
+		disc *= m.Discount()
+	}
+	return cost
+}
+
+// sizes: the default run is small but seeded; BATON_HERDING_LONG=1 runs
+// the long version.
+func sizes() (train, eval int) {
+	if os.Getenv("BATON_HERDING_LONG") != "" {
+		return 120, 1000
+	}
+	return 60, 200
+}
+
+// ratioCI95 is mean(a)/mean(b) over paired samples with the half-width of
+// its 95% interval by the delta method (normal approximation).
+func ratioCI95(a, b []float64) (ratio, half float64) {
+	n := float64(len(a))
+	ma, mb := stat.Mean(a, nil), stat.Mean(b, nil)
+	ratio = ma / mb
+	v := stat.Variance(a, nil) - 2*ratio*stat.Covariance(a, b, nil) + ratio*ratio*stat.Variance(b, nil)
+	return ratio, 1.96 * math.Sqrt(max(v, 0)/n) / math.Abs(mb)
+}
+
+func TestHerdingLearnedGuessesRecoverCoordination(t *testing.T) {
+	m, err := harbor.Default(4) // every boat starts at the dock
+	if err != nil {
+		t.Fatal(err)
+	}
+	nTrain, nEval := sizes()
+	t0 := time.Now()
+	data, err := learn.Collect(m, effort, nTrain, trainSeed, nil)
+	if err != nil {
+		t.Fatal(err)
+	}
+	feat, err := learn.FeaturizerFor(m)
+	if err != nil {
+		t.Fatal(err)
+	}
+	net, rep := learn.Train(feat, data, learn.TrainConfig{Seed: 1})
+	t.Logf("classifier: %d samples from %d episodes, train accuracy %.3f (majority %.3f), %v",
+		rep.Samples, nTrain, rep.TrainAccuracy, data.MajorityRate(), time.Since(t0).Round(time.Millisecond))
+
+	base, _ := signal.New("base", m, signal.Options{})
+	learned, _ := signal.New("learned", m, signal.Options{Classifier: net})
+	f := &fleet{m: m, d: decide.New(m, effort), order: []int{0, 1, 2, 3},
+		none: []int{-1, -1, -1, -1}, known: make([]int, m.Robots()), u: make([]int, m.Robots())}
+	var seq, par, parLearned, basePol []float64
+	t1 := time.Now()
+	for i := range nEval {
+		es := episode.Seed(evalSeed, i)
+		seq = append(seq, f.play(es, way{sequential: true}))
+		par = append(par, f.play(es, way{guess: base}))
+		parLearned = append(parLearned, f.play(es, way{guess: learned}))
+		basePol = append(basePol, f.play(es, way{}))
+	}
+	t.Logf("%d episodes x 4 ways in %v", nEval, time.Since(t1).Round(time.Millisecond))
+
+	ci := func(xs []float64) string {
+		mean, half := episode.MeanCI95(xs)
+		return fmt.Sprintf("%7.2f ± %5.2f", mean, half)
+	}
+	diff := func(a, b []float64) []float64 {
+		d := make([]float64, len(a))
+		for i := range a {
+			d[i] = a[i] - b[i]
+		}
+		return d
+	}
+	t.Logf("base policy (no rollout)    %s", ci(basePol))
+	t.Logf("sequential (one-at-a-time)  %s", ci(seq))
+	t.Logf("parallel, base guesses      %s", ci(par))
+	t.Logf("parallel, learned guesses   %s", ci(parLearned))
+
+	gap := diff(par, seq)
+	gain := diff(parLearned, par)
+	gapMean, gapHalf := episode.MeanCI95(gap)
+	gainMean, gainHalf := episode.MeanCI95(gain)
+	t.Logf("paired: base-par - seq %s; learned-par - base-par %s", ci(gap), ci(gain))
+	if gapMean-gapHalf <= 0 {
+		t.Errorf("parallel with base guesses is not clearly worse than sequential: paired difference %s", ci(gap))
+	}
+	if gainMean+gainHalf >= 0 {
+		t.Errorf("learned guesses are not clearly better than base guesses in parallel: paired difference %s", ci(gain))
+	}
+	retained, rHalf := ratioCI95(gain, gap)
+	retained = -retained
+	t.Logf("retained = (J_base_par - J_learned_par) / (J_base_par - J_seq) = %.3f ± %.3f (delta method)", retained, rHalf)
+	if retained < 0.5 {
+		t.Errorf("learned guesses retain %.3f of the coordination, want >= 0.5", retained)
+	}
+}
