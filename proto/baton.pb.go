@@ -238,8 +238,12 @@ type RoundStart struct {
 	// Digest of the scenario file, so a robot started with another file
 	// refuses the round instead of deciding on a different world.
 	ScenarioDigest string `protobuf:"bytes,10,opt,name=scenario_digest,json=scenarioDigest,proto3" json:"scenario_digest,omitempty"`
-	// Guess source for missing predecessors: "base" for now.
-	GuessSource   string `protobuf:"bytes,11,opt,name=guess_source,json=guessSource,proto3" json:"guess_source,omitempty"`
+	// Guess source for missing predecessors: base, last, recompute or learned.
+	GuessSource string `protobuf:"bytes,11,opt,name=guess_source,json=guessSource,proto3" json:"guess_source,omitempty"`
+	// Epoch identifies one run of the coordinator (its start time): a
+	// restarted coordinator numbers rounds from 1 again, and robots that see
+	// a new epoch start over instead of taking its rounds for stale ones.
+	Epoch         uint64 `protobuf:"varint,12,opt,name=epoch,proto3" json:"epoch,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -349,6 +353,13 @@ func (x *RoundStart) GetGuessSource() string {
 		return x.GuessSource
 	}
 	return ""
+}
+
+func (x *RoundStart) GetEpoch() uint64 {
+	if x != nil {
+		return x.Epoch
+	}
+	return 0
 }
 
 // Decision is one robot's choice for a round.
@@ -711,7 +722,7 @@ const file_baton_proto_rawDesc = "" +
 	"\ahorizon\x18\x02 \x01(\x05R\ahorizon\x12#\n" +
 	"\rterminal_cost\x18\x03 \x01(\bR\fterminalCost\x12\x1d\n" +
 	"\n" +
-	"fleet_seed\x18\x04 \x01(\x04R\tfleetSeed\"\x83\x03\n" +
+	"fleet_seed\x18\x04 \x01(\x04R\tfleetSeed\"\x99\x03\n" +
 	"\n" +
 	"RoundStart\x12\x14\n" +
 	"\x05fleet\x18\x01 \x01(\tR\x05fleet\x12\x14\n" +
@@ -725,7 +736,8 @@ const file_baton_proto_rawDesc = "" +
 	"\x06params\x18\t \x01(\v2\x16.baton.v1.DecideParamsR\x06params\x12'\n" +
 	"\x0fscenario_digest\x18\n" +
 	" \x01(\tR\x0escenarioDigest\x12!\n" +
-	"\fguess_source\x18\v \x01(\tR\vguessSource\"\xe4\x01\n" +
+	"\fguess_source\x18\v \x01(\tR\vguessSource\x12\x14\n" +
+	"\x05epoch\x18\f \x01(\x04R\x05epoch\"\xe4\x01\n" +
 	"\bDecision\x12\x14\n" +
 	"\x05fleet\x18\x01 \x01(\tR\x05fleet\x12\x14\n" +
 	"\x05round\x18\x02 \x01(\x04R\x05round\x12\x14\n" +

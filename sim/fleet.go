@@ -82,6 +82,8 @@ type fleetRun struct {
 	u      []int // what each robot carried out last round
 	client *http.Client
 	wait   time.Duration
+
+	coordArgs []string
 }
 
 // roundResult is what the world saw of one round.
@@ -143,6 +145,7 @@ func startFleet(ctx context.Context, o fleetOpts) (*fleetRun, error) {
 		"--samples", strconv.Itoa(o.samples), "--horizon", strconv.Itoa(o.horizon), "--mode", o.mode,
 		"--turn-deadline", o.turnDeadline.String(), "--period", o.period.String(), "--rounds", strconv.Itoa(o.rounds),
 		"--decision-log", f.decisionLog(), "--http", f.chttp, "--gossip", f.gossip)
+	f.coordArgs = coordArgs
 	if f.coord, err = f.spawn("coordinator", coordArgs); err != nil {
 		f.close()
 		return nil, err
@@ -240,8 +243,26 @@ func (f *fleetRun) restart(ctx context.Context, r int) error {
 	return f.waitRobot(ctx, r)
 }
 
+// restartCoordinator kills the coordinator and starts it again with the
+// same flags; robots must find it again through gossip.
+func (f *fleetRun) restartCoordinator(ctx context.Context, down time.Duration) error {
+	_ = f.coord.cmd.Process.Kill()
+	<-f.coord.done
+	time.Sleep(down)
+	var err error
+	if f.coord, err = f.spawn("coordinator", f.coordArgs); err != nil {
+		return err
+	}
+	return f.waitAlive(ctx, f.m.Robots(), 30*time.Second)
+}
+
 // report posts every robot's observation of the last round.
 func (f *fleetRun) report(round int) {
+	f.reportAs(round)
+}
+
+// reportAs posts every robot's observation, numbered round.
+func (f *fleetRun) reportAs(round int) {
 	for r, b := range f.bases {
 		pos, seen := f.world.Report(r)
 		body, _ := json.Marshal(node.Report{Round: uint64(round), Position: pos, Applied: f.u[r], Seen: seen})

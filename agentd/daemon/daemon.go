@@ -75,6 +75,10 @@ func Main(args []string) int {
 		}
 		return 2
 	}
+	if *robot < 0 {
+		fmt.Fprintln(os.Stderr, "agentd: --robot N is required (this robot's id, 0..robots-1)")
+		return 2
+	}
 	lg, err := shell.Logger(*logLevel, *logJSON, fmt.Sprintf("agentd-%d", *robot))
 	if err != nil {
 		fmt.Fprintln(os.Stderr, "agentd:", err)
@@ -94,7 +98,7 @@ func Main(args []string) int {
 	if !ok {
 		return fail(fmt.Errorf("scenario %s cannot run as a fleet", m.Name()))
 	}
-	if *robot < 0 || *robot >= m.Robots() {
+	if *robot >= m.Robots() {
 		return fail(fmt.Errorf("--robot %d: this fleet has robots 0..%d", *robot, m.Robots()-1))
 	}
 	subj, err := pb.NewSubjects(*prefix, *fleet)
@@ -134,6 +138,8 @@ func Main(args []string) int {
 	var joinList []string
 	if *join != "" {
 		joinList = strings.Split(*join, ",")
+	} else {
+		lg.Warn("no --join: this robot is in no fleet's gossip, so no coordinator will schedule it")
 	}
 	ml, err := shell.Gossip(shell.RobotMember(*fleet, *robot), *gossip, joinList, lg)
 	if err != nil {
@@ -146,10 +152,13 @@ func Main(args []string) int {
 
 	reg := prometheus.NewRegistry()
 	reg.MustRegister(collectors.NewGoCollector(), collectors.NewProcessCollector(collectors.ProcessCollectorOpts{}))
+	bucket := shell.ModelBucket(*prefix, *fleet)
 	n := node.New(node.Config{Fleet: *fleet, Subjects: subj, Robot: *robot, Sender: sender, Model: fm, Digest: digest,
-		Guess: src, Guesses: guessOpts, InjectDelay: *delay, Stale: *stale, Log: lg, Metrics: node.NewMetrics(reg)}, nc)
+		Guess: src, Guesses: guessOpts, InjectDelay: *delay, Stale: *stale, Log: lg, Metrics: node.NewMetrics(reg),
+		FetchModel: func(ctx context.Context, v uint64) ([]byte, error) { return shell.FetchModel(ctx, nc, bucket, v) }}, nc)
 	ctx, stop := signal.NotifyContext(context.Background(), os.Interrupt, syscall.SIGTERM)
 	defer stop()
+	go shell.KeepJoined(ctx, ml, joinList, *fleet+"/coordinator", lg)
 	srv := &http.Server{Handler: n.Handler(reg), ReadHeaderTimeout: 5 * time.Second}
 	go func() {
 		if err := srv.Serve(ln); err != nil && !errors.Is(err, http.ErrServerClosed) {

@@ -1,12 +1,14 @@
 package node
 
 import (
+	"bytes"
 	"encoding/json"
 	"errors"
 	"fmt"
 	"io"
 	"net/http"
 	"strconv"
+	"strings"
 	"time"
 
 	"github.com/prometheus/client_golang/prometheus"
@@ -75,11 +77,29 @@ func (n *Node) serveDecision(w http.ResponseWriter, r *http.Request) {
 }
 
 func (n *Node) serveObservation(w http.ResponseWriter, r *http.Request) {
+	body, err := io.ReadAll(io.LimitReader(r.Body, 1<<20))
+	if err != nil {
+		httpError(w, http.StatusBadRequest, "reading the observation: "+err.Error())
+		return
+	}
+	// Every field but "seen" is required: a report that leaves out the
+	// position would silently put the robot at cell 0.
+	var fields map[string]json.RawMessage
+	if err := json.Unmarshal(body, &fields); err != nil || fields == nil {
+		httpError(w, http.StatusBadRequest, `observation must be one JSON object like {"round":N,"position":P,"applied":C,"seen":[...]}`)
+		return
+	}
+	for _, f := range []string{"round", "position", "applied"} {
+		if _, ok := fields[f]; !ok {
+			httpError(w, http.StatusBadRequest, fmt.Sprintf("observation lacks %q", f))
+			return
+		}
+	}
 	var rep Report
-	dec := json.NewDecoder(io.LimitReader(r.Body, 1<<20))
+	dec := json.NewDecoder(bytes.NewReader(body))
 	dec.DisallowUnknownFields()
 	if err := dec.Decode(&rep); err != nil {
-		httpError(w, http.StatusBadRequest, "observation is not valid JSON: "+err.Error())
+		httpError(w, http.StatusBadRequest, "observation: "+strings.TrimPrefix(err.Error(), "json: "))
 		return
 	}
 	if err := n.Observe(rep); err != nil {

@@ -11,6 +11,7 @@ type Metrics struct {
 	Late        prometheus.Counter
 	Rounds      prometheus.Counter
 	Hop         prometheus.Gauge
+	Model       prometheus.Gauge
 }
 
 // NewMetrics registers the series on reg (nil: a fresh registry).
@@ -32,10 +33,12 @@ func NewMetrics(reg prometheus.Registerer) *Metrics {
 			Name: "baton_rounds_total", Help: "Rounds started."}),
 		Hop: prometheus.NewGauge(prometheus.GaugeOpts{
 			Name: "baton_hop_seconds", Help: "Latest one-way hop to the NATS server (RTT/2)."}),
+		Model: prometheus.NewGauge(prometheus.GaugeOpts{
+			Name: "baton_guess_model_version", Help: "Guess model version in use (0: none from the fleet)."}),
 	}
 	if reg == nil {
 		reg = prometheus.NewRegistry()
 	}
-	reg.MustRegister(m.TurnLatency, m.Compute, m.Turns, m.Dropped, m.Late, m.Rounds, m.Hop)
+	reg.MustRegister(m.TurnLatency, m.Compute, m.Turns, m.Dropped, m.Late, m.Rounds, m.Hop, m.Model)
 	return m
 }

@@ -17,6 +17,7 @@ import (
 	"baton/agentd/turn"
 	pb "baton/proto"
 	"baton/signal"
+	"baton/signal/learn"
 	"baton/sim/model"
 )
 
@@ -82,6 +83,9 @@ type Config struct {
 	Stale   time.Duration
 	Log     *zap.Logger
 	Metrics *Metrics
+	// FetchModel fetches version v of the fleet's guess model (nil: this
+	// robot does not take models from the fleet).
+	FetchModel func(ctx context.Context, v uint64) ([]byte, error)
 	// OnRound, when set, is told when this robot accepted a round start
 	// (the latency benchmark times the turn chain from there).
 	OnRound func(round uint64, at time.Time)
@@ -130,6 +134,14 @@ type Node struct {
 	pending   map[uint64]pending
 	lateSeen  uint64
 	loggedBad map[string]bool
+	runEpoch  uint64 // the coordinator run whose rounds these are
+	haveEpoch bool
+	ctx       context.Context
+	// Guess models: the loaded version, one fetch at a time, and versions
+	// that failed (not fetched again for a while).
+	modelVersion atomic.Uint64
+	fetching     bool
+	modelFailed  map[uint64]time.Time
 
 	mu        sync.Mutex
 	views     map[uint64]*View
@@ -137,6 +149,13 @@ type Node struct {
 	lastStart time.Time
 	changed   chan struct{}
 	state     model.State // last round's state, for checking reports
+	refusal   string      // why the latest round start was refused, if it was
+}
+
+type modelMsg struct {
+	version uint64
+	net     *learn.Net
+	err     error
 }
 
 type pending struct {
@@ -175,13 +194,15 @@ func New(cfg Config, nc *nats.Conn) *Node {
 	}
 	return &Node{
 		cfg: cfg, nc: nc, epoch: time.Now(), events: make(chan any, 4096),
-		machine:   turn.New(turn.Config{Fleet: cfg.Fleet, Robot: cfg.Robot, Robots: cfg.Model.Robots(), Sender: cfg.Sender}),
-		pending:   map[uint64]pending{},
-		loggedBad: map[string]bool{},
-		sources:   map[string]signal.Source{},
-		closedCtl: make([]int, cfg.Model.Robots()),
-		views:     map[uint64]*View{},
-		changed:   make(chan struct{}),
+		machine:     turn.New(turn.Config{Fleet: cfg.Fleet, Robot: cfg.Robot, Robots: cfg.Model.Robots(), Sender: cfg.Sender}),
+		pending:     map[uint64]pending{},
+		modelFailed: map[uint64]time.Time{},
+		ctx:         context.Background(),
+		loggedBad:   map[string]bool{},
+		sources:     map[string]signal.Source{},
+		closedCtl:   make([]int, cfg.Model.Robots()),
+		views:       map[uint64]*View{},
+		changed:     make(chan struct{}),
 	}
 }
 
@@ -189,6 +210,7 @@ func (n *Node) now() time.Duration { return time.Since(n.epoch) }
 
 // Run subscribes and serves events until ctx ends.
 func (n *Node) Run(ctx context.Context) error {
+	n.ctx = ctx
 	// One channel for every subject: the client's reader hands messages
 	// straight to this loop, one goroutine wake-up per message instead of
 	// a delivery goroutine per subscription and a second hand-off.
@@ -247,6 +269,8 @@ func (n *Node) handle(ev any) {
 		n.onRound(ev)
 	case closeMsg:
 		n.onClose(ev.data)
+	case modelMsg:
+		n.onModel(ev)
 	case turn.Event:
 		n.apply(n.machine.Step(ev))
 	}
@@ -267,8 +291,12 @@ func (n *Node) onRound(ev roundMsg) {
 		return
 	}
 	if n.cfg.Digest != "" && rs.GetScenarioDigest() != n.cfg.Digest {
-		n.drop(turn.DropForeign, rs.GetSender(), fmt.Sprintf("round %d was started on scenario digest %s, this robot runs %s: start both with the same scenario file",
-			rs.GetRound(), rs.GetScenarioDigest(), n.cfg.Digest))
+		why := fmt.Sprintf("round %d was started on scenario digest %s, this robot runs %s: start both with the same scenario file and --robots",
+			rs.GetRound(), rs.GetScenarioDigest(), n.cfg.Digest)
+		n.mu.Lock()
+		n.refusal = "refusing rounds: " + why
+		n.mu.Unlock()
+		n.drop(turn.DropForeign, rs.GetSender(), why)
 		return
 	}
 	m := n.cfg.Model
@@ -280,6 +308,21 @@ func (n *Node) onRound(ev roundMsg) {
 	if err := m.Unflatten(x, rs.GetState().GetInts(), rs.GetState().GetReals()); err != nil {
 		n.drop(turn.DropMalformed, rs.GetSender(), fmt.Sprintf("round %d: %v", rs.GetRound(), err))
 		return
+	}
+	if e := rs.GetEpoch(); e != n.runEpoch || !n.haveEpoch {
+		if n.haveEpoch {
+			// A restarted coordinator counts from 1 again: start over
+			// rather than drop its rounds as stale.
+			n.cfg.Log.Info("the coordinator restarted; starting over with its rounds",
+				zap.Uint64("round", rs.GetRound()), zap.Uint64("after_round", n.machine.Round()))
+			n.machine = turn.New(turn.Config{Fleet: n.cfg.Fleet, Robot: n.cfg.Robot, Robots: n.cfg.Model.Robots(), Sender: n.cfg.Sender})
+			n.lateSeen, n.closed = 0, 0
+			n.mu.Lock()
+			clear(n.views)
+			n.latest = 0
+			n.mu.Unlock()
+		}
+		n.runEpoch, n.haveEpoch = e, true
 	}
 	mode := turn.Mode(rs.GetMode())
 	order := make([]int, len(rs.GetOrder()))
@@ -306,8 +349,9 @@ func (n *Node) onRound(ev roundMsg) {
 			n.cfg.OnRound(r, n.epoch.Add(ev.at))
 		}
 		in := slices.Contains(order, n.cfg.Robot)
+		n.maybeFetch(rs.GetGuessModelVersion())
 		n.mu.Lock()
-		n.latest, n.lastStart, n.state = r, time.Now(), x
+		n.latest, n.lastStart, n.state, n.refusal = r, time.Now(), x, ""
 		v := n.view(r)
 		if !in {
 			v.SitOut, v.Hold, v.Reason = true, true, "not in this round's order"
@@ -376,10 +420,16 @@ func (n *Node) view(r uint64) *View {
 }
 
 func (n *Node) controlName(c int) string {
-	if cn, ok := n.cfg.Model.(model.ControlNamer); ok && n.x != nil {
-		return cn.ControlName(n.x, n.cfg.Robot, c)
+	cn, ok := n.cfg.Model.(model.ControlNamer)
+	if !ok {
+		return fmt.Sprintf("control-%d", c)
 	}
-	return fmt.Sprintf("control-%d", c)
+	x := n.x
+	if x == nil { // before any round: name it as at the start
+		x = n.cfg.Model.NewState()
+		n.cfg.Model.Start(x, model.NewRNG(0).Rand)
+	}
+	return cn.ControlName(x, n.cfg.Robot, c)
 }
 
 // notify wakes long-polling readers; n.mu is held.
@@ -564,8 +614,24 @@ func (n *Node) Decision(ctx context.Context, r uint64, wait time.Duration, close
 			out = *v
 		}
 		stale := n.lastStart.IsZero() || time.Since(n.lastStart) > n.cfg.Stale
+		latest, refusal := n.latest, n.refusal
 		n.mu.Unlock()
 		done := ok && (out.Closed || (!closed && (out.Decided || out.SitOut)))
+		// Nothing old is ever served as something to do: a decision is
+		// only good while its round is the current one and recent.
+		if done && !out.Hold {
+			switch {
+			case !n.nc.IsConnected():
+				out.Hold, out.Reason = true, "lost contact with NATS: no current decision"
+			case round == latest && stale:
+				out.Hold, out.Reason = true, fmt.Sprintf("round %d started over %s ago and no round since (coordinator gone?)", round, n.cfg.Stale)
+			case round < latest:
+				out.Hold, out.Reason = true, fmt.Sprintf("round %d is over; the current round is %d", round, latest)
+			}
+			if out.Hold {
+				out.Control, out.Action = 0, n.controlName(0)
+			}
+		}
 		if done {
 			return out
 		}
@@ -578,6 +644,8 @@ func (n *Node) Decision(ctx context.Context, r uint64, wait time.Duration, close
 		out.Round, out.Control, out.Hold = round, 0, true
 		out.Action = n.controlName(0)
 		switch {
+		case refusal != "":
+			out.Reason = refusal
 		case round == 0 || (r == 0 && stale):
 			out.Reason = fmt.Sprintf("no round started in the last %s (coordinator gone?)", n.cfg.Stale)
 		case !ok:
@@ -613,7 +681,13 @@ func (n *Node) Observe(rep Report) error {
 	} else {
 		m.Start(scratch, model.NewRNG(0).Rand)
 	}
+	latest := n.latest
 	n.mu.Unlock()
+	// A report is about the round just carried out (0: before round 1);
+	// one a round or so off is a race, anything further a wrong counter.
+	if rep.Round+1 < latest || rep.Round > latest+1 {
+		return fmt.Errorf("%w: report for round %d, but the current round is %d", ErrBadReport, rep.Round, latest)
+	}
 	if rep.Applied < 0 || rep.Applied >= m.MaxControls() {
 		return fmt.Errorf("%w: applied control %d is not one of 0..%d", ErrBadReport, rep.Applied, m.MaxControls()-1)
 	}
@@ -634,3 +708,61 @@ func (n *Node) Observe(rep Report) error {
 	}
 	return nil
 }
+
+// maybeFetch starts fetching guess model v when a round start names one
+// this robot does not have (one fetch at a time; a version that failed is
+// retried after 30 s).
+func (n *Node) maybeFetch(v uint64) {
+	if v == 0 || v == n.modelVersion.Load() || n.fetching || n.cfg.FetchModel == nil {
+		return
+	}
+	if t, bad := n.modelFailed[v]; bad && time.Since(t) < 30*time.Second {
+		return
+	}
+	n.fetching = true
+	ctx := n.ctx
+	go func() {
+		fctx, cancel := context.WithTimeout(ctx, 10*time.Second)
+		defer cancel()
+		data, err := n.cfg.FetchModel(fctx, v)
+		var net *learn.Net
+		if err == nil {
+			var meta learn.Meta
+			net, meta, err = learn.Check(data, n.cfg.Model)
+			if err == nil && meta.Version != v {
+				err = fmt.Errorf("the object for version %d holds version %d", v, meta.Version)
+			}
+		}
+		select {
+		case n.events <- modelMsg{version: v, net: net, err: err}:
+		case <-ctx.Done():
+		}
+	}()
+}
+
+// onModel swaps in a fetched model, or keeps the one in use when the new
+// one is bad.
+func (n *Node) onModel(ev modelMsg) {
+	n.fetching = false
+	if ev.err != nil {
+		n.modelFailed[ev.version] = time.Now()
+		n.cfg.Log.Error("guess model refused; keeping the one in use", zap.Uint64("version", ev.version),
+			zap.Uint64("in_use", n.modelVersion.Load()), zap.Error(ev.err))
+		return
+	}
+	n.modelVersion.Store(ev.version)
+	n.cfg.Guesses.Classifier = ev.net
+	n.cfg.Metrics.Model.Set(float64(ev.version))
+	// Sources hold the classifier: rebuild them on next use.
+	clear(n.sources)
+	n.saidBase = false
+	if n.cfg.Guess.Name() == "learned" {
+		if s, err := signal.New("learned", n.cfg.Model, n.cfg.Guesses); err == nil {
+			n.cfg.Guess = s
+		}
+	}
+	n.cfg.Log.Info("guess model loaded", zap.Uint64("version", ev.version))
+}
+
+// ModelVersion is the guess model version in use (0: none from the fleet).
+func (n *Node) ModelVersion() uint64 { return n.modelVersion.Load() }

@@ -71,7 +71,13 @@ func newRigWith(t *testing.T, with func(*Config)) *rig {
 	if with != nil {
 		with(&cfg)
 	}
-	n := New(cfg, connect())
+	nodeConn := connect()
+	if cfg.FetchModel == nil {
+		cfg.FetchModel = func(ctx context.Context, v uint64) ([]byte, error) {
+			return shell.FetchModel(ctx, nodeConn, shell.ModelBucket("baton", "yard"), v)
+		}
+	}
+	n := New(cfg, nodeConn)
 	ctx, cancel := context.WithCancel(context.Background())
 	t.Cleanup(cancel)
 	go n.Run(ctx)
@@ -228,8 +234,13 @@ func TestLocalInterface(t *testing.T) {
 		{`{"round":1,"position":-4,"applied":0}`, "bad observation"},
 		{`{"round":1,"position":3,"applied":9}`, "applied control 9 is not one of 0..4"},
 		{`{"round":1,"position":3,"applied":0,"seen":[{"what":99,"value":1}]}`, "bad observation"},
-		{`{"round":1,"pos":3}`, "unknown field"},
-		{`not json`, "not valid JSON"},
+		{`{"round":1,"pos":3,"position":3,"applied":0}`, "unknown field"},
+		{`{"round":1,"pos":3}`, `observation lacks "position"`},
+		{`{}`, `observation lacks "round"`},
+		{`null`, "must be one JSON object"},
+		{`{"round":1,"position":3,"applied":0}{"x":1}`, "must be one JSON object"},
+		{`{"round":40,"position":3,"applied":0}`, "report for round 40, but the current round is 2"},
+		{`not json`, "must be one JSON object"},
 	} {
 		resp, err := http.Post(srv.URL+"/v1/observation", "application/json", strings.NewReader(c.body))
 		if err != nil {
@@ -366,5 +377,33 @@ func TestUnloadedLearnedFallback(t *testing.T) {
 	}
 	if n := r.logs.FilterMessageSnippet("no classifier loaded").Len(); n != 1 {
 		t.Fatalf("said %d times that learned guesses are base, want once", n)
+	}
+}
+
+// A decision is never served as something to do once it is old: when no
+// round has started for Stale, or a later round has, the robot holds.
+func TestOldDecisionsHold(t *testing.T) {
+	r := newRig(t)
+	r.n.cfg.Stale = 300 * time.Millisecond // set before any request reads it
+	r.start(1, []uint32{1, 0}, nil)
+	v := r.n.Decision(context.Background(), 0, 5*time.Second, false)
+	if v.Hold || v.Control != harbor.East {
+		t.Fatalf("fresh decision: %+v", v)
+	}
+	time.Sleep(400 * time.Millisecond)
+	if v := r.n.Decision(context.Background(), 0, 0, false); !v.Hold || v.Control != 0 || !strings.Contains(v.Reason, "coordinator gone?") {
+		t.Fatalf("stale decision not held: %+v", v)
+	}
+	r.start(2, []uint32{1, 0}, nil)
+	r.n.Decision(context.Background(), 2, 5*time.Second, false)
+	if v := r.n.Decision(context.Background(), 1, 0, false); !v.Hold || !strings.Contains(v.Reason, "round 1 is over; the current round is 2") {
+		t.Fatalf("old round not held: %+v", v)
+	}
+	// A restarted coordinator (new epoch) numbers from 1 again: the robot
+	// starts over instead of dropping those rounds as stale.
+	r.start(1, []uint32{1, 0}, func(rs *pb.RoundStart) { rs.Epoch = 99 })
+	waitFor(t, func() bool { return r.n.latestRound() == 1 })
+	if v := r.n.Decision(context.Background(), 1, 5*time.Second, false); v.Hold || !v.Decided {
+		t.Fatalf("round 1 of a new epoch: %+v", v)
 	}
 }

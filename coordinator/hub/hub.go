@@ -10,6 +10,7 @@ import (
 	"io"
 	"slices"
 	"sort"
+	"sync/atomic"
 	"time"
 
 	"github.com/nats-io/nats.go"
@@ -123,6 +124,11 @@ func NewMetrics(reg prometheus.Registerer) *Metrics {
 
 // Hub is a running coordinator.
 type Hub struct {
+	epoch   uint64        // this run's id, sent in every round start
+	model   atomic.Uint64 // guess model version robots should use (0: none)
+	round   uint64        // the round being played (for filing reports)
+	lastOrd []int         // the previous round's order, to log changes
+	heldRun map[int]int   // rounds in a row each robot was held
 	cfg     Config
 	nc      *nats.Conn
 	decs    chan *nats.Msg
@@ -157,7 +163,7 @@ func New(cfg Config, nc *nats.Conn) *Hub {
 	if cfg.Sender == "" {
 		cfg.Sender = "coordinator"
 	}
-	return &Hub{cfg: cfg, nc: nc, decs: make(chan *nats.Msg, 4096), obs: make(chan *nats.Msg, 4096),
+	return &Hub{epoch: uint64(time.Now().UnixNano()), heldRun: map[int]int{}, cfg: cfg, nc: nc, decs: make(chan *nats.Msg, 4096), obs: make(chan *nats.Msg, 4096),
 		monitor: turn.NewLinkMonitor(0, 0, 0), logged: map[string]bool{}, early: map[uint64]map[int]*pb.Observation{}}
 }
 
@@ -207,6 +213,10 @@ func (h *Hub) order() []int {
 	}
 	return out
 }
+
+// SetModelVersion names the guess model robots should fetch and use from
+// the next round start on.
+func (h *Hub) SetModelVersion(v uint64) { h.model.Store(v) }
 
 // Run plays rounds until Rounds are done or ctx ends.
 func (h *Hub) Run(ctx context.Context) error {
@@ -285,6 +295,8 @@ func (h *Hub) playRound(ctx context.Context, round uint64) (Record, error) {
 		case <-time.After(100 * time.Millisecond):
 		}
 	}
+	h.round = round
+	h.logOrder(round, order)
 	mode := h.cfg.Mode
 	if h.cfg.AutoParallel && h.cfg.Period > 0 && mode != turn.Parallel &&
 		h.monitor.Suggest(len(order), 0, h.cfg.Period) == turn.Parallel {
@@ -297,7 +309,8 @@ func (h *Hub) playRound(ctx context.Context, round uint64) (Record, error) {
 	ints, reals := m.Flatten(h.x, nil, nil)
 	rs := &pb.RoundStart{Fleet: h.cfg.Fleet, Round: round, Sender: h.cfg.Sender,
 		State: &pb.Snapshot{Scenario: m.Name(), Ints: ints, Reals: reals}, Mode: pb.Mode(mode),
-		DeadlinesUs: deadlines, Params: h.cfg.Params, ScenarioDigest: h.cfg.Digest, GuessSource: h.cfg.Guess}
+		DeadlinesUs: deadlines, Params: h.cfg.Params, ScenarioDigest: h.cfg.Digest, GuessSource: h.cfg.Guess,
+		Epoch: h.epoch, GuessModelVersion: h.model.Load()}
 	for _, r := range order {
 		rs.Order = append(rs.Order, uint32(r))
 	}
@@ -362,6 +375,7 @@ func (h *Hub) playRound(ctx context.Context, round uint64) (Record, error) {
 		}
 	}
 	h.cfg.Metrics.Held.Add(float64(len(rec.Held)))
+	h.noteHeld(order, rec.Held)
 	h.cfg.Metrics.Rounds.Inc()
 	h.cfg.Metrics.RoundLatency.Observe(float64(rec.LatencyUs) / 1e6)
 	ctl := make([]int32, len(rec.Controls))
@@ -428,6 +442,41 @@ func (h *Hub) nextDeadline(deadlines []uint64, start time.Time) time.Duration {
 	return time.Millisecond
 }
 
+// logOrder says when robots leave or join the order (gossip saw them die
+// or come back).
+func (h *Hub) logOrder(round uint64, order []int) {
+	if h.lastOrd != nil {
+		for _, r := range h.lastOrd {
+			if !slices.Contains(order, r) {
+				h.cfg.Log.Warn("robot left the order (gossip reports it gone)", zap.Int("robot", r), zap.Uint64("round", round))
+			}
+		}
+		for _, r := range order {
+			if !slices.Contains(h.lastOrd, r) {
+				h.cfg.Log.Info("robot joined the order", zap.Int("robot", r), zap.Uint64("round", round))
+			}
+		}
+	}
+	h.lastOrd = slices.Clone(order)
+}
+
+// noteHeld warns once when a live robot keeps missing its turn: it is in
+// gossip but never decides, which is what a robot started with another
+// scenario file (it refuses every round) or a stuck daemon looks like.
+func (h *Hub) noteHeld(order, held []int) {
+	for _, r := range order {
+		if !slices.Contains(held, r) {
+			h.heldRun[r] = 0
+			continue
+		}
+		h.heldRun[r]++
+		if h.heldRun[r] == 3 {
+			h.cfg.Log.Warn("robot is alive but has missed 3 turns in a row; check its log (same scenario file and --robots? slow link?)",
+				zap.Int("robot", r))
+		}
+	}
+}
+
 func sortedKeys(m map[int]*pb.Observation) []int {
 	var k []int
 	for r := range m {
@@ -486,12 +535,26 @@ func (h *Hub) stash(data []byte) {
 		h.drop(turn.DropMalformed, who, fmt.Sprintf("report from robot %d of a %d-robot fleet", o.GetRobot(), h.cfg.Model.Robots()))
 		return
 	}
+	// Only reports for the round being played or the next are kept (the
+	// rest could pile up without bound); before round 1, any report says
+	// where a robot is.
+	switch {
+	case h.round > 0 && o.GetRound() < h.round:
+		h.drop(turn.DropStale, who, fmt.Sprintf("report for round %d during round %d", o.GetRound(), h.round))
+		return
+	case o.GetRound() > h.round+1:
+		if h.round > 0 {
+			h.drop(turn.DropFuture, who, fmt.Sprintf("report for round %d during round %d", o.GetRound(), h.round))
+			return
+		}
+		o.Round = 0 // a robot still counting rounds of an earlier run
+	}
 	byRobot := h.early[o.GetRound()]
 	if byRobot == nil {
 		byRobot = map[int]*pb.Observation{}
 		h.early[o.GetRound()] = byRobot
 	}
-	if byRobot[int(o.GetRobot())] != nil {
+	if byRobot[int(o.GetRobot())] != nil && o.GetRound() > 0 {
 		h.drop(turn.DropDuplicate, who, fmt.Sprintf("second report for round %d", o.GetRound()))
 		return
 	}

@@ -19,6 +19,7 @@ import (
 	"syscall"
 	"time"
 
+	"github.com/nats-io/nats.go"
 	"github.com/prometheus/client_golang/prometheus"
 	"github.com/prometheus/client_golang/prometheus/collectors"
 	"github.com/prometheus/client_golang/prometheus/promhttp"
@@ -29,6 +30,7 @@ import (
 	"baton/deploy/shell"
 	pb "baton/proto"
 	bsignal "baton/signal"
+	"baton/signal/learn"
 	"baton/sim/model"
 	"baton/sim/scenarios"
 )
@@ -59,6 +61,7 @@ func Main(args []string) int {
 	horizon := fs.Int("horizon", 20, "base-policy steps simulated after the first step")
 	termCost := fs.Bool("terminal-cost", false, "add the scenario's cost-to-go estimate at truncation")
 	modeName := fs.String("mode", "hybrid", "sequential, parallel or hybrid")
+	guessModel := fs.String("guess-model", "", "trained guess model file (sim train --out) to distribute to the robots through JetStream; watched for new versions")
 	guess := fs.String("guess", "base", "the fleet's guess source for missing predecessors: "+strings.Join(bsignal.Names(), ", "))
 	autoParallel := fs.Bool("auto-parallel", false, "switch rounds to parallel when measured links are too slow for --period")
 	turnDeadline := fs.Duration("turn-deadline", 200*time.Millisecond, "time each turn gets; turn k is due (k+1) x this after the round starts")
@@ -201,7 +204,17 @@ func Main(args []string) int {
 	defer srv.Close()
 	lg.Info("coordinator up", zap.String("fleet", *fleet), zap.String("scenario", m.Name()), zap.Int("robots", m.Robots()),
 		zap.String("nats", nc.ConnectedUrl()), zap.String("gossip", *gossip), zap.String("mode", mode.String()), zap.String("guess", *guess), zap.String("digest", digest))
-	if err := hub.New(cfg, nc).Run(ctx); err != nil && !errors.Is(err, context.Canceled) {
+	hb := hub.New(cfg, nc)
+	if *guessModel != "" {
+		pub := &modelPublisher{file: *guessModel, m: fm, nc: nc, bucket: shell.ModelBucket(*prefix, *fleet), hub: hb, lg: lg}
+		if err := pub.check(ctx); err != nil {
+			return fail(fmt.Errorf("--guess-model: %w", err))
+		}
+		go pub.watch(ctx)
+	} else if *guess == "learned" {
+		lg.Warn("--guess learned without --guess-model: robots guess with whatever model they were started with, or the base policy")
+	}
+	if err := hb.Run(ctx); err != nil && !errors.Is(err, context.Canceled) {
 		return fail(err)
 	}
 	lg.Info("coordinator stopped")
@@ -223,4 +236,71 @@ func parseOrder(s string, m int) ([]int, error) {
 		out = append(out, v)
 	}
 	return out, nil
+}
+
+// modelPublisher keeps the fleet's guess model in the object store: it
+// publishes the file's version at start and again whenever the file changes
+// to a valid model with a higher version. A bad file is reported and the
+// version in use stays.
+type modelPublisher struct {
+	file    string
+	m       model.Model
+	nc      *nats.Conn
+	bucket  string
+	hub     *hub.Hub
+	lg      *zap.Logger
+	version uint64
+	stamp   time.Time
+	size    int64
+}
+
+func (p *modelPublisher) check(ctx context.Context) error {
+	fi, err := os.Stat(p.file)
+	if err != nil {
+		return err
+	}
+	if fi.ModTime().Equal(p.stamp) && fi.Size() == p.size {
+		return nil
+	}
+	p.stamp, p.size = fi.ModTime(), fi.Size()
+	data, err := os.ReadFile(p.file)
+	if err != nil {
+		return err
+	}
+	_, meta, err := learn.Check(data, p.m)
+	if err != nil {
+		return err
+	}
+	if meta.Version == 0 {
+		return fmt.Errorf("%s has version 0; write it with sim train --out (versions start at 1)", p.file)
+	}
+	if meta.Version <= p.version {
+		return fmt.Errorf("%s changed but its version %d is not above %d in use; write new models with a higher version", p.file, meta.Version, p.version)
+	}
+	pctx, cancel := context.WithTimeout(ctx, 10*time.Second)
+	defer cancel()
+	if err := shell.PublishModel(pctx, p.nc, p.bucket, meta.Version, data); err != nil {
+		return err
+	}
+	p.version = meta.Version
+	p.hub.SetModelVersion(meta.Version)
+	p.lg.Info("guess model published", zap.String("file", p.file), zap.Uint64("version", meta.Version),
+		zap.String("bucket", p.bucket), zap.Float64("test_accuracy", meta.TestAccuracy))
+	return nil
+}
+
+func (p *modelPublisher) watch(ctx context.Context) {
+	t := time.NewTicker(2 * time.Second)
+	defer t.Stop()
+	for {
+		select {
+		case <-ctx.Done():
+			return
+		case <-t.C:
+			if err := p.check(ctx); err != nil {
+				p.lg.Error("new guess model refused; robots keep the one in use", zap.String("file", p.file),
+					zap.Uint64("in_use", p.version), zap.Error(err))
+			}
+		}
+	}
 }
