@@ -75,6 +75,10 @@ func Main(args []string) int {
 		}
 		return 2
 	}
+	if fs.NArg() > 0 {
+		fmt.Fprintf(os.Stderr, "agentd: unexpected argument %q (flags start with --)\n", fs.Arg(0))
+		return 2
+	}
 	if *robot < 0 {
 		fmt.Fprintln(os.Stderr, "agentd: --robot N is required (this robot's id, 0..robots-1)")
 		return 2

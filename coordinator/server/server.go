@@ -85,6 +85,10 @@ func Main(args []string) int {
 		}
 		return 2
 	}
+	if fs.NArg() > 0 {
+		fmt.Fprintf(os.Stderr, "coordinator: unexpected argument %q (flags start with --)\n", fs.Arg(0))
+		return 2
+	}
 	lg, err := shell.Logger(*logLevel, *logJSON, "coordinator")
 	if err != nil {
 		fmt.Fprintln(os.Stderr, "coordinator:", err)
@@ -130,6 +134,11 @@ func Main(args []string) int {
 		return fail(err)
 	}
 	url := *natsURL
+	natsSet := false
+	fs.Visit(func(f *flag.Flag) { natsSet = natsSet || f.Name == "nats" })
+	if *embed && natsSet {
+		return fail(fmt.Errorf("--embed-nats and --nats: choose one (the embedded server or an existing one)"))
+	}
 	if *embed {
 		host, portStr, err := net.SplitHostPort(*embedListen)
 		if err != nil {

@@ -65,7 +65,10 @@ func Connect(urls, creds, name string, timeout time.Duration, lg *zap.Logger) (*
 	}
 	opts := []nats.Option{
 		nats.Name(name), nats.MaxReconnects(-1), nats.ReconnectWait(250 * time.Millisecond),
-		nats.DisconnectErrHandler(func(_ *nats.Conn, err error) {
+		nats.DisconnectErrHandler(func(c *nats.Conn, err error) {
+			if err == nil || c.IsClosed() {
+				return // our own Close, not a fault
+			}
 			lg.Warn("lost NATS connection; reconnecting", zap.Error(err))
 		}),
 		nats.ReconnectHandler(func(c *nats.Conn) { lg.Info("NATS reconnected", zap.String("url", c.ConnectedUrl())) }),

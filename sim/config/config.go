@@ -7,6 +7,7 @@ import (
 	"errors"
 	"fmt"
 	"os"
+	"reflect"
 	"regexp"
 	"strconv"
 	"strings"
@@ -74,7 +75,65 @@ func Parse(name string, data []byte, dst any) (*Doc, error) {
 	if err := dec.Decode(dst); err != nil {
 		return nil, d.wrapYAML(err)
 	}
+	// The YAML library truncates 2.9 into an int field without a word;
+	// a harbor 2.9 cells wide is a typo, not a 2.
+	if err := d.wholeNumbers(d.root, reflect.ValueOf(dst), ""); err != nil {
+		return nil, err
+	}
 	return d, nil
+}
+
+// wholeNumbers walks the document beside the Go value it was decoded into
+// and refuses fractional numbers where the field is an integer.
+func (d *Doc) wholeNumbers(n *yaml.Node, v reflect.Value, path string) error {
+	for v.Kind() == reflect.Pointer || v.Kind() == reflect.Interface {
+		if v.IsNil() {
+			return nil
+		}
+		v = v.Elem()
+	}
+	switch n.Kind {
+	case yaml.ScalarNode:
+		switch v.Kind() {
+		case reflect.Int, reflect.Int8, reflect.Int16, reflect.Int32, reflect.Int64,
+			reflect.Uint, reflect.Uint8, reflect.Uint16, reflect.Uint32, reflect.Uint64:
+			if n.Tag == "!!float" {
+				return &Error{File: d.File, Line: n.Line, Field: path, Msg: fmt.Sprintf("want a whole number, got %s", n.Value)}
+			}
+		}
+	case yaml.SequenceNode:
+		if v.Kind() != reflect.Slice && v.Kind() != reflect.Array {
+			return nil
+		}
+		for i, c := range n.Content {
+			if i < v.Len() {
+				if err := d.wholeNumbers(c, v.Index(i), fmt.Sprintf("%s[%d]", path, i)); err != nil {
+					return err
+				}
+			}
+		}
+	case yaml.MappingNode:
+		if v.Kind() != reflect.Struct {
+			return nil
+		}
+		t := v.Type()
+		for i := 0; i+1 < len(n.Content); i += 2 {
+			key := n.Content[i].Value
+			for f := 0; f < t.NumField(); f++ {
+				tag, _, _ := strings.Cut(t.Field(f).Tag.Get("yaml"), ",")
+				if tag == key && t.Field(f).IsExported() {
+					p := key
+					if path != "" {
+						p = path + "." + key
+					}
+					if err := d.wholeNumbers(n.Content[i+1], v.Field(f), p); err != nil {
+						return err
+					}
+				}
+			}
+		}
+	}
+	return nil
 }
 
 // wrapYAML turns the yaml library's messages into our FILE:LINE form.

@@ -42,6 +42,7 @@ func TestParseErrors(t *testing.T) {
 		{"wrong type", "name: a\nitems: 3\n", "f.yaml:2:"},
 		{"syntax", "name: [a\n", "f.yaml:"},
 		{"empty", "", "f.yaml: file is empty"},
+		{"fraction for an int", "name: a\nitems:\n  - x: 2.5\n", "f.yaml:3: items[0].x: want a whole number, got 2.5"},
 		{"not a mapping", "- 1\n- 2\n", "top level must be a mapping"},
 	}
 	for _, c := range cases {
