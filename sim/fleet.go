@@ -62,6 +62,8 @@ type fleetOpts struct {
 	prefix       string
 	logDir       string
 	slow         faults
+	guess        string // the fleet's guess source
+	guessModel   string // model file the coordinator distributes
 	exe          string // the binary that runs `agentd` and `coordinator`
 }
 
@@ -145,6 +147,13 @@ func startFleet(ctx context.Context, o fleetOpts) (*fleetRun, error) {
 		"--samples", strconv.Itoa(o.samples), "--horizon", strconv.Itoa(o.horizon), "--mode", o.mode,
 		"--turn-deadline", o.turnDeadline.String(), "--period", o.period.String(), "--rounds", strconv.Itoa(o.rounds),
 		"--decision-log", f.decisionLog(), "--http", f.chttp, "--gossip", f.gossip)
+	if o.guess != "" {
+		coordArgs = append(coordArgs, "--guess", o.guess)
+	}
+	if o.guessModel != "" {
+		abs, _ := filepath.Abs(o.guessModel)
+		coordArgs = append(coordArgs, "--guess-model", abs)
+	}
 	f.coordArgs = coordArgs
 	if f.coord, err = f.spawn("coordinator", coordArgs); err != nil {
 		f.close()
@@ -340,6 +349,8 @@ func cmdFleet(args []string) error {
 	asJSON := fs.Bool("json", false, "print the summary as one JSON object (no per-round lines)")
 	quiet := fs.Bool("quiet", false, "no per-round lines")
 	fs.Var(o.slow, "slow", "fault injection: ROBOT=DELAY holds back that robot's decisions (repeatable)")
+	fs.StringVar(&o.guess, "guess", "base", "guess source for predecessors not heard in time: base, last, recompute or learned")
+	fs.StringVar(&o.guessModel, "guess-model", "", "model file from sim train, distributed to the robots (for --guess learned)")
 	if err := parse(fs, args); err != nil {
 		return err
 	}
