@@ -15,8 +15,8 @@ import (
 	"baton/agentd/decide"
 	"baton/coordinator/hub"
 	"baton/signal/learn"
-	"baton/sim/harbor"
 	"baton/sim/episode"
+	"baton/sim/harbor"
 	"baton/sim/world"
 )
 
