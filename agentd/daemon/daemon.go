@@ -46,14 +46,9 @@ usage: agentd --robot N --nats URL [flags]
 // Main runs agentd with args and returns the exit code.
 func Main(args []string) int {
 	fs := flag.NewFlagSet("agentd", flag.ContinueOnError)
+	var c shell.Common
+	c.Register(fs, "must match the coordinator's")
 	robot := fs.Int("robot", -1, "this robot's id, 0..robots-1 (required)")
-	natsURL := fs.String("nats", "nats://127.0.0.1:4222", "NATS server URL list, comma-separated")
-	creds := fs.String("creds", "", "NATS credentials file")
-	fleet := fs.String("fleet", "demo", "fleet id")
-	prefix := fs.String("prefix", "baton", "NATS subject prefix")
-	scenario := fs.String("scenario", "harbor", "scenario: "+strings.Join(scenarios.Names(), " or "))
-	file := fs.String("config", "", "scenario YAML file (default: the built-in demo); must match the coordinator's")
-	robots := fs.Int("robots", 0, "fleet size (default: the file's or demo's own)")
 	httpAddr := fs.String("http", "127.0.0.1:7400", "local interface for the robot's software (localhost only by default)")
 	gossip := fs.String("gossip", "127.0.0.1:0", "gossip bind host:port (port 0 picks one)")
 	join := fs.String("join", "", "gossip address(es) of the coordinator or any member, comma-separated")
@@ -62,28 +57,14 @@ func Main(args []string) int {
 	guessModel := fs.String("guess-model", "", "trained guess model file (signal/learn) for learned guesses; without one they are base guesses")
 	delay := fs.Duration("inject-delay", 0, "fault injection: hold back this robot's decisions by this long")
 	stale := fs.Duration("stale", 10*time.Second, "hold when no round has started for this long")
-	connectTimeout := fs.Duration("connect-timeout", 30*time.Second, "keep retrying an unreachable NATS server this long")
-	logLevel := fs.String("log-level", "info", "debug, info, warn or error")
-	logJSON := fs.Bool("log-json", false, "log JSON lines")
-	fs.Usage = func() {
-		fmt.Fprint(fs.Output(), synopsis+"\nflags:\n")
-		fs.PrintDefaults()
-	}
-	if err := fs.Parse(args); err != nil {
-		if errors.Is(err, flag.ErrHelp) {
-			return 0
-		}
-		return 2
-	}
-	if fs.NArg() > 0 {
-		fmt.Fprintf(os.Stderr, "agentd: unexpected argument %q (flags start with --)\n", fs.Arg(0))
-		return 2
+	if code, ok := shell.Parse(fs, synopsis, args); !ok {
+		return code
 	}
 	if *robot < 0 {
 		fmt.Fprintln(os.Stderr, "agentd: --robot N is required (this robot's id, 0..robots-1)")
 		return 2
 	}
-	lg, err := shell.Logger(*logLevel, *logJSON, fmt.Sprintf("agentd-%d", *robot))
+	lg, err := shell.Logger(c.LogLevel, c.LogJSON, fmt.Sprintf("agentd-%d", *robot))
 	if err != nil {
 		fmt.Fprintln(os.Stderr, "agentd:", err)
 		return 2
@@ -94,7 +75,7 @@ func Main(args []string) int {
 		fmt.Fprintln(os.Stderr, "agentd:", err)
 		return 1
 	}
-	m, err := scenarios.Load(*scenario, *file, *robots)
+	m, err := scenarios.Load(c.Scenario, c.Config, c.Robots)
 	if err != nil {
 		return fail(err)
 	}
@@ -105,11 +86,11 @@ func Main(args []string) int {
 	if *robot >= m.Robots() {
 		return fail(fmt.Errorf("--robot %d: this fleet has robots 0..%d", *robot, m.Robots()-1))
 	}
-	subj, err := pb.NewSubjects(*prefix, *fleet)
+	subj, err := pb.NewSubjects(c.Prefix, c.Fleet)
 	if err != nil {
 		return fail(err)
 	}
-	digest, err := shell.Digest(*scenario, *file, m.Robots())
+	digest, err := shell.Digest(c.Scenario, c.Config, m.Robots())
 	if err != nil {
 		return fail(err)
 	}
@@ -134,7 +115,7 @@ func Main(args []string) int {
 		return fail(fmt.Errorf("--http %s: %w", *httpAddr, err))
 	}
 	sender := fmt.Sprintf("robot-%d@%d", *robot, os.Getpid())
-	nc, err := shell.Connect(*natsURL, *creds, sender, *connectTimeout, lg)
+	nc, err := shell.Connect(c.NATS, c.Creds, sender, c.ConnectTimeout, lg)
 	if err != nil {
 		return fail(err)
 	}
@@ -145,7 +126,7 @@ func Main(args []string) int {
 	} else {
 		lg.Warn("no --join: this robot is in no fleet's gossip, so no coordinator will schedule it")
 	}
-	ml, err := shell.Gossip(shell.RobotMember(*fleet, *robot), *gossip, joinList, lg)
+	ml, err := shell.Gossip(shell.RobotMember(c.Fleet, *robot), *gossip, joinList, lg)
 	if err != nil {
 		return fail(err)
 	}
@@ -156,13 +137,13 @@ func Main(args []string) int {
 
 	reg := prometheus.NewRegistry()
 	reg.MustRegister(collectors.NewGoCollector(), collectors.NewProcessCollector(collectors.ProcessCollectorOpts{}))
-	bucket := shell.ModelBucket(*prefix, *fleet)
-	n := node.New(node.Config{Fleet: *fleet, Subjects: subj, Robot: *robot, Sender: sender, Model: fm, Digest: digest,
+	bucket := shell.ModelBucket(c.Prefix, c.Fleet)
+	n := node.New(node.Config{Fleet: c.Fleet, Subjects: subj, Robot: *robot, Sender: sender, Model: fm, Digest: digest,
 		Guess: src, Guesses: guessOpts, InjectDelay: *delay, Stale: *stale, Log: lg, Metrics: node.NewMetrics(reg),
 		FetchModel: func(ctx context.Context, v uint64) ([]byte, error) { return shell.FetchModel(ctx, nc, bucket, v) }}, nc)
 	ctx, stop := signal.NotifyContext(context.Background(), os.Interrupt, syscall.SIGTERM)
 	defer stop()
-	go shell.KeepJoined(ctx, ml, joinList, *fleet+"/coordinator", lg)
+	go shell.KeepJoined(ctx, ml, joinList, c.Fleet+"/coordinator", lg)
 	srv := &http.Server{Handler: n.Handler(reg), ReadHeaderTimeout: 5 * time.Second}
 	go func() {
 		if err := srv.Serve(ln); err != nil && !errors.Is(err, http.ErrServerClosed) {
@@ -170,7 +151,7 @@ func Main(args []string) int {
 			stop()
 		}
 	}()
-	lg.Info("agentd up", zap.Int("robot", *robot), zap.String("fleet", *fleet), zap.String("scenario", m.Name()),
+	lg.Info("agentd up", zap.Int("robot", *robot), zap.String("fleet", c.Fleet), zap.String("scenario", m.Name()),
 		zap.String("http", ln.Addr().String()), zap.String("nats", nc.ConnectedUrl()), zap.String("digest", digest))
 	err = n.Run(ctx)
 	sctx, cancel := context.WithTimeout(context.Background(), 2*time.Second)

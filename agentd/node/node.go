@@ -15,6 +15,7 @@ import (
 
 	"baton/agentd/decide"
 	"baton/agentd/turn"
+	"baton/deploy/shell"
 	pb "baton/proto"
 	"baton/signal"
 	"baton/signal/learn"
@@ -133,7 +134,7 @@ type Node struct {
 	closedCtl []int
 	pending   map[uint64]pending
 	lateSeen  uint64
-	loggedBad map[string]bool
+	drops     shell.Drops
 	runEpoch  uint64 // the coordinator run whose rounds these are
 	haveEpoch bool
 	ctx       context.Context
@@ -192,18 +193,19 @@ func New(cfg Config, nc *nats.Conn) *Node {
 	if cfg.Metrics == nil {
 		cfg.Metrics = NewMetrics(nil)
 	}
-	return &Node{
+	n := &Node{
 		cfg: cfg, nc: nc, epoch: time.Now(), events: make(chan any, 4096),
 		machine:     turn.New(turn.Config{Fleet: cfg.Fleet, Robot: cfg.Robot, Robots: cfg.Model.Robots(), Sender: cfg.Sender}),
 		pending:     map[uint64]pending{},
 		modelFailed: map[uint64]time.Time{},
 		ctx:         context.Background(),
-		loggedBad:   map[string]bool{},
 		sources:     map[string]signal.Source{},
 		closedCtl:   make([]int, cfg.Model.Robots()),
 		views:       map[uint64]*View{},
 		changed:     make(chan struct{}),
+		drops:       shell.Drops{Log: cfg.Log, Counter: cfg.Metrics.Dropped},
 	}
+	return n
 }
 
 func (n *Node) now() time.Duration { return time.Since(n.epoch) }
@@ -450,13 +452,7 @@ func (n *Node) apply(acts []turn.Action) {
 		case turn.Publish:
 			n.publish(a.Decision)
 		case turn.Drop:
-			n.cfg.Metrics.Dropped.WithLabelValues(string(a.Reason)).Inc()
-			key := string(a.Reason) + "/" + a.Sender
-			if !n.loggedBad[key] {
-				n.loggedBad[key] = true
-				n.cfg.Log.Warn("dropped message (further drops of this kind from this sender are counted, not logged)",
-					zap.String("reason", string(a.Reason)), zap.String("sender", a.Sender), zap.String("detail", a.Detail))
-			}
+			n.drops.Drop(string(a.Reason), a.Sender, a.Detail)
 		}
 	}
 	if late := n.machine.Late(); late > n.lateSeen {

@@ -19,6 +19,7 @@ import (
 	"google.golang.org/protobuf/proto"
 
 	"baton/agentd/turn"
+	"baton/deploy/shell"
 	pb "baton/proto"
 	"baton/sim/model"
 )
@@ -135,7 +136,7 @@ type Hub struct {
 	obs     chan *nats.Msg
 	x       model.State
 	monitor *turn.LinkMonitor
-	logged  map[string]bool
+	drops   shell.Drops
 	// Reports that arrived for a round not being collected yet.
 	early map[uint64]map[int]*pb.Observation
 }
@@ -164,17 +165,12 @@ func New(cfg Config, nc *nats.Conn) *Hub {
 		cfg.Sender = "coordinator"
 	}
 	return &Hub{epoch: uint64(time.Now().UnixNano()), heldRun: map[int]int{}, cfg: cfg, nc: nc, decs: make(chan *nats.Msg, 4096), obs: make(chan *nats.Msg, 4096),
-		monitor: turn.NewLinkMonitor(0, 0, 0), logged: map[string]bool{}, early: map[uint64]map[int]*pb.Observation{}}
+		monitor: turn.NewLinkMonitor(0, 0, 0), early: map[uint64]map[int]*pb.Observation{},
+		drops: shell.Drops{Log: cfg.Log, Counter: cfg.Metrics.Dropped}}
 }
 
 func (h *Hub) drop(reason turn.DropReason, sender, detail string) {
-	h.cfg.Metrics.Dropped.WithLabelValues(string(reason)).Inc()
-	key := string(reason) + "/" + sender
-	if !h.logged[key] {
-		h.logged[key] = true
-		h.cfg.Log.Warn("dropped message (further drops of this kind from this sender are counted, not logged)",
-			zap.String("reason", string(reason)), zap.String("sender", sender), zap.String("detail", detail))
-	}
+	h.drops.Drop(string(reason), sender, detail)
 }
 
 func (h *Hub) alive() []int {

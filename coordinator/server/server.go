@@ -47,15 +47,10 @@ usage: coordinator [--embed-nats | --nats URL] [flags]
 // Main runs the coordinator with args and returns the exit code.
 func Main(args []string) int {
 	fs := flag.NewFlagSet("coordinator", flag.ContinueOnError)
-	natsURL := fs.String("nats", "nats://127.0.0.1:4222", "NATS server URL list, comma-separated")
-	creds := fs.String("creds", "", "NATS credentials file")
+	var c shell.Common
+	c.Register(fs, "robots must use the same")
 	embed := fs.Bool("embed-nats", false, "run an embedded NATS server in this process (nothing else to install)")
 	embedListen := fs.String("embed-listen", "127.0.0.1:4222", "address of the embedded NATS server")
-	fleet := fs.String("fleet", "demo", "fleet id")
-	prefix := fs.String("prefix", "baton", "NATS subject prefix")
-	scenario := fs.String("scenario", "harbor", "scenario: "+strings.Join(scenarios.Names(), " or "))
-	file := fs.String("config", "", "scenario YAML file (default: the built-in demo); robots must use the same")
-	robots := fs.Int("robots", 0, "fleet size (default: the file's or demo's own)")
 	seed := fs.Uint64("seed", 1, "fleet seed for every robot's Monte Carlo")
 	samples := fs.Int("samples", 16, "Monte Carlo samples per Q-factor")
 	horizon := fs.Int("horizon", 20, "base-policy steps simulated after the first step")
@@ -72,24 +67,10 @@ func Main(args []string) int {
 	logFile := fs.String("decision-log", "", "append one JSON line per round to this file")
 	httpAddr := fs.String("http", "127.0.0.1:7480", "healthz and metrics address")
 	gossip := fs.String("gossip", "127.0.0.1:7946", "gossip bind host:port that robots --join")
-	connectTimeout := fs.Duration("connect-timeout", 30*time.Second, "keep retrying an unreachable NATS server this long")
-	logLevel := fs.String("log-level", "info", "debug, info, warn or error")
-	logJSON := fs.Bool("log-json", false, "log JSON lines")
-	fs.Usage = func() {
-		fmt.Fprint(fs.Output(), synopsis+"\nflags:\n")
-		fs.PrintDefaults()
+	if code, ok := shell.Parse(fs, synopsis, args); !ok {
+		return code
 	}
-	if err := fs.Parse(args); err != nil {
-		if errors.Is(err, flag.ErrHelp) {
-			return 0
-		}
-		return 2
-	}
-	if fs.NArg() > 0 {
-		fmt.Fprintf(os.Stderr, "coordinator: unexpected argument %q (flags start with --)\n", fs.Arg(0))
-		return 2
-	}
-	lg, err := shell.Logger(*logLevel, *logJSON, "coordinator")
+	lg, err := shell.Logger(c.LogLevel, c.LogJSON, "coordinator")
 	if err != nil {
 		fmt.Fprintln(os.Stderr, "coordinator:", err)
 		return 2
@@ -113,7 +94,7 @@ func Main(args []string) int {
 	if *samples < 1 || *horizon < 0 {
 		return fail(fmt.Errorf("--samples must be >= 1 and --horizon >= 0"))
 	}
-	m, err := scenarios.Load(*scenario, *file, *robots)
+	m, err := scenarios.Load(c.Scenario, c.Config, c.Robots)
 	if err != nil {
 		return fail(err)
 	}
@@ -125,15 +106,15 @@ func Main(args []string) int {
 	if err != nil {
 		return fail(err)
 	}
-	subj, err := pb.NewSubjects(*prefix, *fleet)
+	subj, err := pb.NewSubjects(c.Prefix, c.Fleet)
 	if err != nil {
 		return fail(err)
 	}
-	digest, err := shell.Digest(*scenario, *file, m.Robots())
+	digest, err := shell.Digest(c.Scenario, c.Config, m.Robots())
 	if err != nil {
 		return fail(err)
 	}
-	url := *natsURL
+	url := c.NATS
 	natsSet := false
 	fs.Visit(func(f *flag.Flag) { natsSet = natsSet || f.Name == "nats" })
 	if *embed && natsSet {
@@ -153,12 +134,12 @@ func Main(args []string) int {
 		url = u
 		lg.Info("embedded NATS server up", zap.String("url", u))
 	}
-	nc, err := shell.Connect(url, *creds, "coordinator-"+*fleet, *connectTimeout, lg)
+	nc, err := shell.Connect(url, c.Creds, "coordinator-"+c.Fleet, c.ConnectTimeout, lg)
 	if err != nil {
 		return fail(err)
 	}
 	defer nc.Close()
-	ml, err := shell.Gossip(*fleet+"/coordinator", *gossip, nil, lg)
+	ml, err := shell.Gossip(c.Fleet+"/coordinator", *gossip, nil, lg)
 	if err != nil {
 		return fail(err)
 	}
@@ -180,10 +161,10 @@ func Main(args []string) int {
 	if h == 0 {
 		h = -1 // 0 means "first step only" on the wire, not decide's default
 	}
-	cfg := hub.Config{Fleet: *fleet, Subjects: subj, Model: fm, Digest: digest, Mode: mode, Guess: *guess,
+	cfg := hub.Config{Fleet: c.Fleet, Subjects: subj, Model: fm, Digest: digest, Mode: mode, Guess: *guess,
 		Params:     &pb.DecideParams{Samples: uint32(*samples), Horizon: h, TerminalCost: *termCost, FleetSeed: *seed},
 		TurnBudget: *turnDeadline, Period: *period, Rounds: *rounds, ReportWait: *reportWait, Order: order,
-		Alive: func() []int { return shell.AliveRobots(ml, *fleet) }, AutoParallel: *autoParallel,
+		Alive: func() []int { return shell.AliveRobots(ml, c.Fleet) }, AutoParallel: *autoParallel,
 		Log: lg, Metrics: hub.NewMetrics(reg),
 		OnRound: func(r hub.Record) {
 			lg.Debug("round closed", zap.Uint64("round", r.Round), zap.Ints("order", r.Order), zap.Ints("held", r.Held),
@@ -206,16 +187,16 @@ func Main(args []string) int {
 			http.Error(w, "not connected to NATS", http.StatusServiceUnavailable)
 			return
 		}
-		fmt.Fprintf(w, "ok fleet %s, %d robots alive\n", *fleet, len(shell.AliveRobots(ml, *fleet)))
+		fmt.Fprintf(w, "ok fleet %s, %d robots alive\n", c.Fleet, len(shell.AliveRobots(ml, c.Fleet)))
 	})
 	srv := &http.Server{Handler: mux, ReadHeaderTimeout: 5 * time.Second}
 	go func() { _ = srv.Serve(ln) }()
 	defer srv.Close()
-	lg.Info("coordinator up", zap.String("fleet", *fleet), zap.String("scenario", m.Name()), zap.Int("robots", m.Robots()),
+	lg.Info("coordinator up", zap.String("fleet", c.Fleet), zap.String("scenario", m.Name()), zap.Int("robots", m.Robots()),
 		zap.String("nats", nc.ConnectedUrl()), zap.String("gossip", *gossip), zap.String("mode", mode.String()), zap.String("guess", *guess), zap.String("digest", digest))
 	hb := hub.New(cfg, nc)
 	if *guessModel != "" {
-		pub := &modelPublisher{file: *guessModel, m: fm, nc: nc, bucket: shell.ModelBucket(*prefix, *fleet), hub: hb, lg: lg}
+		pub := &modelPublisher{file: *guessModel, m: fm, nc: nc, bucket: shell.ModelBucket(c.Prefix, c.Fleet), hub: hb, lg: lg}
 		if err := pub.check(ctx); err != nil {
 			return fail(fmt.Errorf("--guess-model: %w", err))
 		}
