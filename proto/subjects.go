@@ -11,6 +11,7 @@ type Subjects struct {
 	Decision string // wildcard for all robots' decisions
 	Close    string // RoundClose, coordinator -> robots
 	Obs      string // wildcard for all robots' observations
+	Hello    string // ReportRequest, coordinator -> robots
 	prefix   string
 }
 
@@ -25,7 +26,7 @@ func NewSubjects(prefix, fleet string) (Subjects, error) {
 		return Subjects{}, fmt.Errorf("--fleet %q: use letters, digits, - and _ only", fleet)
 	}
 	p := prefix + "." + fleet
-	return Subjects{Round: p + ".round", Decision: p + ".decision.*", Close: p + ".close", Obs: p + ".obs.*", prefix: p}, nil
+	return Subjects{Round: p + ".round", Decision: p + ".decision.*", Close: p + ".close", Obs: p + ".obs.*", Hello: p + ".hello", prefix: p}, nil
 }
 
 // DecisionOf is the subject robot r publishes its decision on.

@@ -13,17 +13,18 @@ import (
 	"os/exec"
 	"os/signal"
 	"path/filepath"
+	"slices"
 	"sort"
 	"strconv"
 	"strings"
 	"syscall"
 	"time"
 
-	"github.com/nats-io/nats-server/v2/server"
-
 	"baton/agentd/node"
 	"baton/agentd/turn"
 	"baton/deploy/shell"
+	bsignal "baton/signal"
+	"baton/signal/learn"
 	"baton/sim/episode"
 	"baton/sim/model"
 	"baton/sim/world"
@@ -72,7 +73,7 @@ type fleetOpts struct {
 type fleetRun struct {
 	o      fleetOpts
 	m      model.Fleet
-	ns     *server.Server
+	ns     *shell.Embedded
 	url    string
 	coord  *proc
 	robots []*proc
@@ -115,6 +116,14 @@ func startFleet(ctx context.Context, o fleetOpts) (*fleetRun, error) {
 	}
 	if o.turnDeadline <= 0 {
 		return nil, fmt.Errorf("--turn-deadline must be positive, got %s", o.turnDeadline)
+	}
+	if o.guess != "" && !slices.Contains(bsignal.Names(), o.guess) {
+		return nil, fmt.Errorf("--guess %q: use one of %s", o.guess, strings.Join(bsignal.Names(), ", "))
+	}
+	if o.guessModel != "" {
+		if _, _, err := learn.Load(o.guessModel, m); err != nil {
+			return nil, fmt.Errorf("--guess-model: %w", err)
+		}
 	}
 	for r := range o.slow {
 		if r >= m.Robots() {
@@ -267,11 +276,6 @@ func (f *fleetRun) restartCoordinator(ctx context.Context, down time.Duration) e
 
 // report posts every robot's observation of the last round.
 func (f *fleetRun) report(round int) {
-	f.reportAs(round)
-}
-
-// reportAs posts every robot's observation, numbered round.
-func (f *fleetRun) reportAs(round int) {
 	for r, b := range f.bases {
 		pos, seen := f.world.Report(r)
 		body, _ := json.Marshal(node.Report{Round: uint64(round), Position: pos, Applied: f.u[r], Seen: seen})

@@ -184,3 +184,58 @@ func TestBenchRounds(t *testing.T) {
 		}
 	}
 }
+
+func TestTrain(t *testing.T) {
+	out := filepath.Join(t.TempDir(), "h.gm")
+	args := []string{"train", "--scenario", "harbor", "--robots", "3", "--episodes", "6", "--eval-episodes", "3",
+		"--iterations", "2", "--samples", "3", "--horizon", "5", "--epochs", "5", "--out", out, "--json"}
+	stdout, errOut, code := runSim(t, args...)
+	if code != 0 {
+		t.Fatalf("exit %d: %s", code, errOut)
+	}
+	var rep struct {
+		Iterations []struct {
+			Iteration             int
+			BaseCost, LearnedCost float64 `json:"learned_cost"`
+			Accuracy              float64 `json:"test_accuracy"`
+			ModelBytes            int     `json:"model_bytes"`
+		} `json:"iterations"`
+		Saved   int    `json:"saved_iteration"`
+		Version uint64 `json:"version"`
+	}
+	if err := json.Unmarshal([]byte(stdout), &rep); err != nil {
+		t.Fatalf("%v\n%s", err, stdout)
+	}
+	if len(rep.Iterations) != 2 || rep.Version != 1 || rep.Saved < 1 || rep.Iterations[0].ModelBytes == 0 {
+		t.Fatalf("report %s", stdout)
+	}
+	// Training again over the file writes the next version.
+	stdout, _, code = runSim(t, args...)
+	if err := json.Unmarshal([]byte(stdout), &rep); code != 0 || err != nil || rep.Version != 2 {
+		t.Fatalf("second run: exit %d version %d", code, rep.Version)
+	}
+	// The same seed trains the same model, byte for byte.
+	again := filepath.Join(t.TempDir(), "h.gm")
+	a2 := append(append([]string{}, args[:len(args)-3]...), "--out", again, "--version", "2", "--json")
+	if _, e, c := runSim(t, a2...); c != 0 {
+		t.Fatalf("%s", e)
+	}
+	b1, _ := os.ReadFile(out)
+	b2, _ := os.ReadFile(again)
+	if string(b1) != string(b2) {
+		t.Fatal("same seed, different model files")
+	}
+	for _, c := range []struct {
+		args []string
+		want string
+	}{
+		{[]string{"train", "--episodes", "1"}, "--episodes must be at least 2"},
+		{[]string{"train", "--hidden", "8,8,8"}, "at most two layers"},
+		{[]string{"train", "--out", t.TempDir()}, "is a directory"},
+		{[]string{"train", "--test-frac", "1.5"}, "--test-frac must be between 0 and 1"},
+	} {
+		if _, e, code := runSim(t, c.args...); code == 0 || !strings.Contains(e, c.want) {
+			t.Errorf("sim %v: %d %q, want %q", c.args, code, e, c.want)
+		}
+	}
+}

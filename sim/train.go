@@ -4,6 +4,7 @@ import (
 	"encoding/json"
 	"fmt"
 	"os"
+	"path/filepath"
 	"strconv"
 	"strings"
 	"time"
@@ -40,6 +41,8 @@ type trainReport struct {
 	Features   string     `json:"feature_version"`
 	Iterations []trainRow `json:"iterations"`
 	Out        string     `json:"out,omitempty"`
+	Saved      int        `json:"saved_iteration,omitempty"`
+	Version    uint64     `json:"version,omitempty"`
 }
 
 func cmdTrain(args []string) error {
@@ -55,7 +58,8 @@ func cmdTrain(args []string) error {
 	horizon := fs.Int("horizon", 15, "base-policy steps simulated after the first step")
 	hidden := fs.String("hidden", "32", "hidden layer sizes, e.g. 32 or 64,32")
 	epochs := fs.Int("epochs", 30, "training epochs")
-	out := fs.String("out", "", "write the last iteration's model here (a versioned model file)")
+	out := fs.String("out", "", "write the model of the iteration whose learned policy cost least here (a versioned model file)")
+	version := fs.Uint64("version", 0, "version to write into the model file (default: 1 plus the version already in --out, or 1); fleets take only higher versions")
 	asJSON := fs.Bool("json", false, "print one JSON object")
 	if err := parse(fs, args); err != nil {
 		return err
@@ -87,6 +91,24 @@ func cmdTrain(args []string) error {
 	if err != nil {
 		return err
 	}
+	// Settle where the model goes and its version before the long part.
+	if *out != "" {
+		if fi, err := os.Stat(*out); err == nil && fi.IsDir() {
+			return fmt.Errorf("--out %s is a directory; give a file name, e.g. %s", *out, filepath.Join(*out, m.Name()+".gm"))
+		}
+		probe, err := os.CreateTemp(filepath.Dir(*out), ".baton-train-*")
+		if err != nil {
+			return fmt.Errorf("--out: cannot write in %s: %w", filepath.Dir(*out), err)
+		}
+		probe.Close()
+		os.Remove(probe.Name())
+		if *version == 0 {
+			*version = 1
+			if _, meta, err := learn.Load(*out, m); err == nil {
+				*version = meta.Version + 1
+			}
+		}
+	}
 	feat, err := learn.FeaturizerFor(m)
 	if err != nil {
 		return err
@@ -105,7 +127,8 @@ func cmdTrain(args []string) error {
 		}
 	}
 	var base model.Model = m
-	var net *learn.Net
+	var net, best *learn.Net
+	bestIt, bestCost := 0, 0.0
 	for it := 1; it <= *iterations; it++ {
 		itSeed := model.Mix(*seed, uint64(it))
 		t0 := time.Now()
@@ -117,7 +140,7 @@ func cmdTrain(args []string) error {
 		collect := time.Since(t0)
 		train, test := data.Split(*testFrac, itSeed)
 		if train.Len() == 0 || test.Len() == 0 {
-			return fmt.Errorf("iteration %d: the split left no training or no test samples; raise --episodes", it)
+			return fmt.Errorf("iteration %d: the split left no training or no test samples (%d episodes gave %d decisions); raise --episodes, or use a scenario whose episodes take steps", it, *episodes, data.Len())
 		}
 		step(fmt.Sprintf("iteration %d: training", it))
 		t1 := time.Now()
@@ -154,13 +177,17 @@ func cmdTrain(args []string) error {
 		row.RolloutCost, row.RolloutCI95 = episode.MeanCI95(costs[1])
 		row.LearnedCost, row.LearnedCI95 = episode.MeanCI95(costs[2])
 		rep.Iterations = append(rep.Iterations, row)
+		if best == nil || row.LearnedCost < bestCost {
+			best, bestIt, bestCost = net, it, row.LearnedCost
+		}
 		step(fmt.Sprintf("iteration %d: done", it))
 		base = learned
 	}
 	if *out != "" {
-		if err := net.Save(*out, uint64(*iterations)); err != nil {
+		if err := best.Save(*out, *version); err != nil {
 			return fmt.Errorf("--out: %w", err)
 		}
+		rep.Saved, rep.Version = bestIt, *version
 	}
 	if bar != nil {
 		_ = bar.Finish()
@@ -181,7 +208,7 @@ func cmdTrain(args []string) error {
 	}
 	fmt.Println("\niteration i+1's base policy is iteration i's learned policy.")
 	if *out != "" {
-		fmt.Printf("model (version %d) written to %s\n", *iterations, *out)
+		fmt.Printf("iteration %d's model (its learned policy cost least) written to %s as version %d\n", rep.Saved, *out, rep.Version)
 	}
 	return nil
 }

@@ -151,6 +151,7 @@ type Node struct {
 	changed   chan struct{}
 	state     model.State // last round's state, for checking reports
 	refusal   string      // why the latest round start was refused, if it was
+	lastObs   []byte      // the latest report sent, re-sent when a coordinator asks
 }
 
 type modelMsg struct {
@@ -218,7 +219,7 @@ func (n *Node) Run(ctx context.Context) error {
 	// a delivery goroutine per subscription and a second hand-off.
 	s := n.cfg.Subjects
 	msgs := make(chan *nats.Msg, 4096)
-	for _, subj := range []string{s.Round, s.Decision, s.Close} {
+	for _, subj := range []string{s.Round, s.Decision, s.Close, s.Hello} {
 		ss, err := n.nc.ChanSubscribe(subj, msgs)
 		if err != nil {
 			return fmt.Errorf("subscribe %s: %w", subj, err)
@@ -240,6 +241,8 @@ func (n *Node) Run(ctx context.Context) error {
 				n.onRound(roundMsg{at: n.now(), data: msg.Data})
 			case s.Close:
 				n.onClose(msg.Data)
+			case s.Hello:
+				n.onHello(msg.Data)
 			default:
 				n.apply(n.machine.Step(turn.Heard{Now: n.now(), Data: msg.Data}))
 			}
@@ -679,9 +682,10 @@ func (n *Node) Observe(rep Report) error {
 	}
 	latest := n.latest
 	n.mu.Unlock()
-	// A report is about the round just carried out (0: before round 1);
-	// one a round or so off is a race, anything further a wrong counter.
-	if rep.Round+1 < latest || rep.Round > latest+1 {
+	// A report is about the round just carried out; one a round or so off
+	// is a race, anything further a wrong counter. Round 0 ("where I am")
+	// is always fine.
+	if rep.Round != 0 && (rep.Round+1 < latest || rep.Round > latest+1) {
 		return fmt.Errorf("%w: report for round %d, but the current round is %d", ErrBadReport, rep.Round, latest)
 	}
 	if rep.Applied < 0 || rep.Applied >= m.MaxControls() {
@@ -702,7 +706,33 @@ func (n *Node) Observe(rep Report) error {
 	if err := n.nc.Publish(n.cfg.Subjects.ObsOf(n.cfg.Robot), data); err != nil {
 		return fmt.Errorf("sending observation: %w", err)
 	}
+	n.mu.Lock()
+	n.lastObs = data
+	n.mu.Unlock()
 	return nil
+}
+
+// onHello answers a coordinator that waits for first reports (a new or
+// restarted one) with this robot's latest report.
+func (n *Node) onHello(data []byte) {
+	var req pb.ReportRequest
+	if err := proto.Unmarshal(data, &req); err != nil {
+		n.drop(turn.DropMalformed, "", "report request: "+err.Error())
+		return
+	}
+	if req.GetFleet() != n.cfg.Fleet {
+		n.drop(turn.DropForeign, req.GetSender(), fmt.Sprintf("report request for fleet %q", req.GetFleet()))
+		return
+	}
+	n.mu.Lock()
+	last := n.lastObs
+	n.mu.Unlock()
+	if last == nil {
+		return // nothing reported yet: the robot's software will
+	}
+	if err := n.nc.Publish(n.cfg.Subjects.ObsOf(n.cfg.Robot), last); err != nil {
+		n.cfg.Log.Warn("re-sending the latest report", zap.Error(err))
+	}
 }
 
 // maybeFetch starts fetching guess model v when a round start names one

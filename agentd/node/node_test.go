@@ -95,7 +95,7 @@ func newRigWith(t *testing.T, with func(*Config)) *rig {
 	})
 	t.Cleanup(func() { sub.Unsubscribe() })
 	// Let the node's subscriptions reach the server.
-	waitFor(t, func() bool { return ns.NumSubscriptions() >= baseSubs+4 })
+	waitFor(t, func() bool { return ns.NumSubscriptions() >= baseSubs+5 })
 	r.start = func(round uint64, order []uint32, mutate func(*pb.RoundStart)) {
 		ints, reals := m.Flatten(r.x, nil, nil)
 		rs := &pb.RoundStart{Fleet: "yard", Round: round, Sender: "coordinator", Order: order,

@@ -332,7 +332,10 @@ func (m *Machine) onHeard(e Heard) []Action {
 			return []Action{m.compute(true)}
 		}
 	case computing, done:
-		m.late++
+		// In parallel mode nobody waits, so nothing can be late.
+		if m.mode != Parallel {
+			m.late++
+		}
 	}
 	return nil
 }

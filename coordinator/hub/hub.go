@@ -244,6 +244,12 @@ func (h *Hub) Run(ctx context.Context) error {
 	for r, o := range reports {
 		h.absorb(r, o)
 	}
+	for _, r := range h.alive() {
+		if reports[r] == nil {
+			h.cfg.Log.Warn("starting without a report from this robot: it is taken to be at its start position until it reports",
+				zap.Int("robot", r))
+		}
+	}
 	for round := uint64(1); h.cfg.Rounds == 0 || round <= uint64(h.cfg.Rounds); round++ {
 		next := time.Now().Add(h.cfg.Period)
 		rec, err := h.playRound(ctx, round)
@@ -535,15 +541,14 @@ func (h *Hub) stash(data []byte) {
 	// rest could pile up without bound); before round 1, any report says
 	// where a robot is.
 	switch {
-	case h.round > 0 && o.GetRound() < h.round:
+	case h.round == 0:
+		o.Round = 0 // before round 1 a report of any round says where a robot is
+	case o.GetRound() < h.round:
 		h.drop(turn.DropStale, who, fmt.Sprintf("report for round %d during round %d", o.GetRound(), h.round))
 		return
 	case o.GetRound() > h.round+1:
-		if h.round > 0 {
-			h.drop(turn.DropFuture, who, fmt.Sprintf("report for round %d during round %d", o.GetRound(), h.round))
-			return
-		}
-		o.Round = 0 // a robot still counting rounds of an earlier run
+		h.drop(turn.DropFuture, who, fmt.Sprintf("report for round %d during round %d", o.GetRound(), h.round))
+		return
 	}
 	byRobot := h.early[o.GetRound()]
 	if byRobot == nil {
@@ -557,12 +562,28 @@ func (h *Hub) stash(data []byte) {
 	byRobot[int(o.GetRobot())] = &o
 }
 
+func (h *Hub) askReports() {
+	data, _ := proto.Marshal(&pb.ReportRequest{Fleet: h.cfg.Fleet, Epoch: h.epoch, Sender: h.cfg.Sender})
+	if err := h.nc.Publish(h.cfg.Subjects.Hello, data); err != nil {
+		h.cfg.Log.Warn("asking robots for reports", zap.Error(err))
+	}
+}
+
 // collectReports waits up to ReportWait for reports of round from want.
 // For round 0 it waits for every robot but returns early only when all
 // live robots reported, so a fleet starts together.
 func (h *Hub) collectReports(ctx context.Context, round uint64, want []int) (map[int]*pb.Observation, error) {
 	timeout := time.NewTimer(h.cfg.ReportWait)
 	defer timeout.Stop()
+	var hello <-chan time.Time
+	if round == 0 {
+		// Ask for reports (again every second): robots whose coordinator
+		// restarted re-send their latest one instead of waiting forever.
+		h.askReports()
+		t := time.NewTicker(time.Second)
+		defer t.Stop()
+		hello = t.C
+	}
 	for {
 		got := h.early[round]
 		have := 0
@@ -579,6 +600,8 @@ func (h *Hub) collectReports(ctx context.Context, round uint64, want []int) (map
 			return nil, ctx.Err()
 		case <-timeout.C:
 			goto done
+		case <-hello:
+			h.askReports()
 		case msg := <-h.obs:
 			h.stash(msg.Data)
 		case msg := <-h.decs:

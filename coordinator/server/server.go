@@ -282,14 +282,20 @@ func (p *modelPublisher) check(ctx context.Context) error {
 func (p *modelPublisher) watch(ctx context.Context) {
 	t := time.NewTicker(2 * time.Second)
 	defer t.Stop()
+	said := ""
 	for {
 		select {
 		case <-ctx.Done():
 			return
 		case <-t.C:
-			if err := p.check(ctx); err != nil {
+			err := p.check(ctx)
+			if err != nil && err.Error() != said {
 				p.lg.Error("new guess model refused; robots keep the one in use", zap.String("file", p.file),
 					zap.Uint64("in_use", p.version), zap.Error(err))
+			}
+			said = "" // the same problem is logged once, until it changes
+			if err != nil {
+				said = err.Error()
 			}
 		}
 	}

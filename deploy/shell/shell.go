@@ -93,11 +93,24 @@ func Connect(urls, creds, name string, timeout time.Duration, lg *zap.Logger) (*
 	}
 }
 
+// Embedded is a NATS server running in this process.
+type Embedded struct {
+	*server.Server
+	dir string
+}
+
+// Shutdown stops the server and removes its JetStream files.
+func (e *Embedded) Shutdown() {
+	e.Server.Shutdown()
+	e.Server.WaitForShutdown()
+	os.RemoveAll(e.dir)
+}
+
 // EmbeddedNATS starts a NATS server in this process on host:port (port 0:
 // a free one) and returns it with its client URL. JetStream is on (for the
-// guess-model store), keeping its files in a temporary directory that the
-// caller's Shutdown leaves behind only if the process dies.
-func EmbeddedNATS(host string, port int) (*server.Server, string, error) {
+// guess-model store), keeping its files in a temporary directory that
+// Shutdown removes.
+func EmbeddedNATS(host string, port int) (*Embedded, string, error) {
 	if port == 0 {
 		port = server.RANDOM_PORT
 	}
@@ -125,11 +138,7 @@ func EmbeddedNATS(host string, port int) (*server.Server, string, error) {
 		os.RemoveAll(dir)
 		return nil, "", fmt.Errorf("embedded NATS on %s:%d did not start within 10s", host, port)
 	}
-	go func() {
-		ns.WaitForShutdown()
-		os.RemoveAll(dir)
-	}()
-	return ns, ns.ClientURL(), nil
+	return &Embedded{Server: ns, dir: dir}, ns.ClientURL(), nil
 }
 
 // GossipConfig is memberlist tuned for a site network: failures are found

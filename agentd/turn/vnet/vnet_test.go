@@ -119,10 +119,11 @@ func TestParallel(t *testing.T) {
 			t.Errorf("robot %d used heard controls %v", r, tr.Known)
 		}
 	}
-	// Everything heard arrived after the Compute: late for all but the first.
-	for k, r := range order {
-		if got := n.Machine(r).Counters().Late; got != uint64(k) {
-			t.Errorf("robot %d late %d want %d", r, got, k)
+	// Everything heard arrived after the Compute, but in parallel mode
+	// nobody waited for it: nothing counts as late.
+	for _, r := range order {
+		if got := n.Machine(r).Counters().Late; got != 0 {
+			t.Errorf("robot %d late %d want 0", r, got)
 		}
 	}
 }
