@@ -324,6 +324,7 @@ type fleetSummary struct {
 	Robots        int     `json:"robots"`
 	Rounds        int     `json:"rounds"`
 	Mode          string  `json:"mode"`
+	Guess         string  `json:"guess"`
 	Cost          float64 `json:"cost"`
 	CostPerRound  float64 `json:"cost_per_round"`
 	Batches       int     `json:"batches_finished"`
@@ -379,7 +380,7 @@ func cmdFleet(args []string) error {
 		fmt.Printf("fleet %s: %s, %d robots, %s mode, NATS %s, logs in %s\n", o.fleet, m.Name(), m.Robots(), o.mode, f.url, o.logDir)
 	}
 	var lat []float64
-	sum := fleetSummary{Scenario: m.Name(), Robots: m.Robots(), Mode: o.mode, DecisionLog: f.decisionLog(), ProcessLogDir: o.logDir}
+	sum := fleetSummary{Scenario: m.Name(), Robots: m.Robots(), Mode: o.mode, Guess: o.guess, DecisionLog: f.decisionLog(), ProcessLogDir: o.logDir}
 	for round := 1; round <= o.rounds && ctx.Err() == nil; round++ {
 		res := f.play(round)
 		lat = append(lat, float64(res.LatencyUs)/1000)

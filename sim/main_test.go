@@ -195,10 +195,10 @@ func TestTrain(t *testing.T) {
 	}
 	var rep struct {
 		Iterations []struct {
-			Iteration             int
-			BaseCost, LearnedCost float64 `json:"learned_cost"`
-			Accuracy              float64 `json:"test_accuracy"`
-			ModelBytes            int     `json:"model_bytes"`
+			Iteration   int     `json:"iteration"`
+			LearnedCost float64 `json:"learned_cost"`
+			Accuracy    float64 `json:"test_accuracy"`
+			ModelBytes  int     `json:"model_bytes"`
 		} `json:"iterations"`
 		Saved   int    `json:"saved_iteration"`
 		Version uint64 `json:"version"`

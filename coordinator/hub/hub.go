@@ -66,6 +66,8 @@ type Config struct {
 type Record struct {
 	Round     uint64     `json:"round"`
 	Mode      string     `json:"mode"`
+	Guess     string     `json:"guess"`
+	Model     uint64     `json:"guess_model_version,omitempty"`
 	Order     []int      `json:"order"`
 	Controls  []int      `json:"controls"`
 	Held      []int      `json:"held"`
@@ -320,7 +322,7 @@ func (h *Hub) playRound(ctx context.Context, round uint64) (Record, error) {
 	if err != nil {
 		return Record{}, err
 	}
-	rec := Record{Round: round, Mode: mode.String(), Order: order, Controls: make([]int, m.Robots()), Held: []int{},
+	rec := Record{Round: round, Mode: mode.String(), Guess: h.cfg.Guess, Model: rs.GetGuessModelVersion(), Order: order, Controls: make([]int, m.Robots()), Held: []int{},
 		StartedAt: time.Now(), Snapshot: &StateWire{Ints: ints, Reals: reals}}
 	start := time.Now()
 	if err := h.nc.Publish(h.cfg.Subjects.Round, data); err != nil {
