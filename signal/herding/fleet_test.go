@@ -23,7 +23,7 @@ import (
 // runFleet plays rounds of a 4-boat harbor fleet in parallel mode with the
 // coordinator naming guess, over an embedded NATS server: real nodes, real
 // hub, a seeded world fed by the round closes. It returns the hub's records.
-func runFleet(t *testing.T, guess string, rounds int, params *pb.DecideParams) []hub.Record {
+func runFleet(t *testing.T, guess string, rounds int, params *pb.DecideParams, with ...func(*hub.Config)) []hub.Record {
 	t.Helper()
 	ns, url, err := shell.EmbeddedNATS("127.0.0.1", 0)
 	if err != nil {
@@ -92,9 +92,13 @@ func runFleet(t *testing.T, guess string, rounds int, params *pb.DecideParams) [
 		}
 	}()
 	var recs []hub.Record
-	h := hub.New(hub.Config{Fleet: "herd", Subjects: subj, Model: m, Params: params, Mode: turn.Parallel, Guess: guess,
+	cfg := hub.Config{Fleet: "herd", Subjects: subj, Model: m, Params: params, Mode: turn.Parallel, Guess: guess,
 		TurnBudget: time.Second, Rounds: rounds, ReportWait: time.Second,
-		OnRound: func(r hub.Record) { recs = append(recs, r) }}, connect())
+		OnRound: func(r hub.Record) { recs = append(recs, r) }}
+	for _, f := range with {
+		f(&cfg)
+	}
+	h := hub.New(cfg, connect())
 	if err := h.Run(ctx); err != nil {
 		t.Fatal(err)
 	}
@@ -156,4 +160,29 @@ func guessOf(m model.Model, x model.State, guess string, prev []int, p int) int 
 		return prev[p] // harbor: every control stays valid
 	}
 	return m.Base(x, p)
+}
+
+// The link monitor at work: with a round period shorter than a sequential
+// round's hops could ever fit, --auto-parallel switches hybrid rounds to
+// parallel as soon as robots have reported hop times; without it the
+// fleet stays hybrid.
+func TestAutoParallel(t *testing.T) {
+	params := &pb.DecideParams{Samples: 2, Horizon: 3, FleetSeed: 1}
+	modes := func(auto bool) []string {
+		recs := runFleet(t, "base", 4, params, func(c *hub.Config) {
+			c.Mode, c.Period, c.AutoParallel = turn.Hybrid, time.Microsecond, auto
+		})
+		var out []string
+		for _, r := range recs {
+			out = append(out, r.Mode)
+		}
+		return out
+	}
+	if got := modes(false); slices.Contains(got, "parallel") {
+		t.Fatalf("without --auto-parallel: %v", got)
+	}
+	got := modes(true)
+	if got[0] != "hybrid" || got[len(got)-1] != "parallel" {
+		t.Fatalf("with --auto-parallel: %v, want hybrid first (no hop samples yet), parallel later", got)
+	}
 }
