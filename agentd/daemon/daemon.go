@@ -23,11 +23,8 @@ import (
 
 	"baton/agentd/node"
 	"baton/deploy/shell"
-	pb "baton/proto"
 	bsignal "baton/signal"
 	"baton/signal/learn"
-	"baton/sim/model"
-	"baton/sim/scenarios"
 )
 
 const synopsis = `agentd: one robot's Baton daemon.
@@ -64,36 +61,21 @@ func Main(args []string) int {
 		fmt.Fprintln(os.Stderr, "agentd: --robot N is required (this robot's id, 0..robots-1)")
 		return 2
 	}
-	lg, err := shell.Logger(c.LogLevel, c.LogJSON, fmt.Sprintf("agentd-%d", *robot))
+	lg, fail, err := c.Start(fmt.Sprintf("agentd-%d", *robot))
 	if err != nil {
 		fmt.Fprintln(os.Stderr, "agentd:", err)
 		return 2
 	}
 	defer lg.Sync()
-	fail := func(err error) int {
-		lg.Error("agentd cannot start", zap.Error(err))
-		fmt.Fprintln(os.Stderr, "agentd:", err)
-		return 1
-	}
-	m, err := scenarios.Load(c.Scenario, c.Config, c.Robots)
+	fl, err := c.Load()
 	if err != nil {
 		return fail(err)
 	}
-	fm, ok := m.(model.Fleet)
-	if !ok {
-		return fail(fmt.Errorf("scenario %s cannot run as a fleet", m.Name()))
-	}
+	m := fl.Model
 	if *robot >= m.Robots() {
 		return fail(fmt.Errorf("--robot %d: this fleet has robots 0..%d", *robot, m.Robots()-1))
 	}
-	subj, err := pb.NewSubjects(c.Prefix, c.Fleet)
-	if err != nil {
-		return fail(err)
-	}
-	digest, err := shell.Digest(c.Scenario, c.Config, m.Robots())
-	if err != nil {
-		return fail(err)
-	}
+	subj, digest := fl.Subjects, fl.Digest
 	// Without a guess model learned guesses are base guesses: the node
 	// says so once when it first needs one.
 	var guessOpts bsignal.Options
@@ -138,7 +120,7 @@ func Main(args []string) int {
 	reg := prometheus.NewRegistry()
 	reg.MustRegister(collectors.NewGoCollector(), collectors.NewProcessCollector(collectors.ProcessCollectorOpts{}))
 	bucket := shell.ModelBucket(c.Prefix, c.Fleet)
-	n := node.New(node.Config{Fleet: c.Fleet, Subjects: subj, Robot: *robot, Sender: sender, Model: fm, Digest: digest,
+	n := node.New(node.Config{Fleet: c.Fleet, Subjects: subj, Robot: *robot, Sender: sender, Model: m, Digest: digest,
 		Guess: src, Guesses: guessOpts, InjectDelay: *delay, Stale: *stale, Log: lg, Metrics: node.NewMetrics(reg),
 		FetchModel: func(ctx context.Context, v uint64) ([]byte, error) { return shell.FetchModel(ctx, nc, bucket, v) }}, nc)
 	ctx, stop := signal.NotifyContext(context.Background(), os.Interrupt, syscall.SIGTERM)

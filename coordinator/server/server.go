@@ -32,7 +32,6 @@ import (
 	bsignal "baton/signal"
 	"baton/signal/learn"
 	"baton/sim/model"
-	"baton/sim/scenarios"
 )
 
 const synopsis = `coordinator: Baton's round clock for one fleet.
@@ -70,17 +69,12 @@ func Main(args []string) int {
 	if code, ok := shell.Parse(fs, synopsis, args); !ok {
 		return code
 	}
-	lg, err := shell.Logger(c.LogLevel, c.LogJSON, "coordinator")
+	lg, fail, err := c.Start("coordinator")
 	if err != nil {
 		fmt.Fprintln(os.Stderr, "coordinator:", err)
 		return 2
 	}
 	defer lg.Sync()
-	fail := func(err error) int {
-		lg.Error("coordinator cannot start", zap.Error(err))
-		fmt.Fprintln(os.Stderr, "coordinator:", err)
-		return 1
-	}
 	mode, ok := turn.ParseMode(*modeName)
 	if !ok {
 		return fail(fmt.Errorf("--mode %q: use sequential, parallel or hybrid", *modeName))
@@ -94,26 +88,16 @@ func Main(args []string) int {
 	if *samples < 1 || *horizon < 0 {
 		return fail(fmt.Errorf("--samples must be >= 1 and --horizon >= 0"))
 	}
-	m, err := scenarios.Load(c.Scenario, c.Config, c.Robots)
+	fl, err := c.Load()
 	if err != nil {
 		return fail(err)
 	}
-	fm, ok := m.(model.Fleet)
-	if !ok {
-		return fail(fmt.Errorf("scenario %s cannot run as a fleet", m.Name()))
-	}
+	m := fl.Model
 	order, err := parseOrder(*orderFlag, m.Robots())
 	if err != nil {
 		return fail(err)
 	}
-	subj, err := pb.NewSubjects(c.Prefix, c.Fleet)
-	if err != nil {
-		return fail(err)
-	}
-	digest, err := shell.Digest(c.Scenario, c.Config, m.Robots())
-	if err != nil {
-		return fail(err)
-	}
+	subj, digest := fl.Subjects, fl.Digest
 	url := c.NATS
 	natsSet := false
 	fs.Visit(func(f *flag.Flag) { natsSet = natsSet || f.Name == "nats" })
@@ -161,7 +145,7 @@ func Main(args []string) int {
 	if h == 0 {
 		h = -1 // 0 means "first step only" on the wire, not decide's default
 	}
-	cfg := hub.Config{Fleet: c.Fleet, Subjects: subj, Model: fm, Digest: digest, Mode: mode, Guess: *guess,
+	cfg := hub.Config{Fleet: c.Fleet, Subjects: subj, Model: m, Digest: digest, Mode: mode, Guess: *guess,
 		Params:     &pb.DecideParams{Samples: uint32(*samples), Horizon: h, TerminalCost: *termCost, FleetSeed: *seed},
 		TurnBudget: *turnDeadline, Period: *period, Rounds: *rounds, ReportWait: *reportWait, Order: order,
 		Alive: func() []int { return shell.AliveRobots(ml, c.Fleet) }, AutoParallel: *autoParallel,
@@ -196,7 +180,7 @@ func Main(args []string) int {
 		zap.String("nats", nc.ConnectedUrl()), zap.String("gossip", *gossip), zap.String("mode", mode.String()), zap.String("guess", *guess), zap.String("digest", digest))
 	hb := hub.New(cfg, nc)
 	if *guessModel != "" {
-		pub := &modelPublisher{file: *guessModel, m: fm, nc: nc, bucket: shell.ModelBucket(c.Prefix, c.Fleet), hub: hb, lg: lg}
+		pub := &modelPublisher{file: *guessModel, m: m, nc: nc, bucket: shell.ModelBucket(c.Prefix, c.Fleet), hub: hb, lg: lg}
 		if err := pub.check(ctx); err != nil {
 			return fail(fmt.Errorf("--guess-model: %w", err))
 		}

@@ -8,6 +8,10 @@ import (
 	"strings"
 	"time"
 
+	"go.uber.org/zap"
+
+	pb "baton/proto"
+	"baton/sim/model"
 	"baton/sim/scenarios"
 )
 
@@ -55,4 +59,52 @@ func Parse(fs *flag.FlagSet, synopsis string, args []string) (int, bool) {
 		return 2, false
 	}
 	return 0, true
+}
+
+// Fleet is what both daemons derive from the common flags.
+type Fleet struct {
+	Model    model.Fleet
+	Subjects pb.Subjects
+	Digest   string // scenario file and robot count, checked in every round start
+}
+
+// Load builds the scenario, the subjects and the digest.
+func (c *Common) Load() (Fleet, error) {
+	m, err := scenarios.Load(c.Scenario, c.Config, c.Robots)
+	if err != nil {
+		return Fleet{}, err
+	}
+	fm, ok := m.(model.Fleet)
+	if !ok {
+		return Fleet{}, fmt.Errorf("scenario %s cannot run as a fleet", m.Name())
+	}
+	subj, err := pb.NewSubjects(c.Prefix, c.Fleet)
+	if err != nil {
+		return Fleet{}, err
+	}
+	digest, err := Digest(c.Scenario, c.Config, m.Robots())
+	if err != nil {
+		return Fleet{}, err
+	}
+	return Fleet{Model: fm, Subjects: subj, Digest: digest}, nil
+}
+
+// Start makes a daemon's logger and its fail function: a start-up error is
+// printed once, plainly (as a JSON log line when the logs are JSON), and
+// the process exits 1.
+func (c *Common) Start(name string) (*zap.Logger, func(error) int, error) {
+	lg, err := Logger(c.LogLevel, c.LogJSON, name)
+	if err != nil {
+		return nil, nil, err
+	}
+	prog := strings.SplitN(name, "-", 2)[0]
+	fail := func(err error) int {
+		if c.LogJSON {
+			lg.Error(prog+" cannot start", zap.Error(err))
+		} else {
+			fmt.Fprintf(os.Stderr, "%s: %v\n", prog, err)
+		}
+		return 1
+	}
+	return lg, fail, nil
 }
