@@ -1,5 +1,7 @@
-// Baton's wire schema. Every message carries fleet, round and sender; a
-// receiver drops (and counts) stale, duplicate, foreign and malformed ones.
+// Baton's wire schema. Every message carries fleet, round (or epoch) and
+// sender; a receiver drops (and counts) stale, duplicate, foreign, malformed
+// and out-of-bounds ones. proto/PROTOCOL.md has the rules; proto/wire
+// converts these messages to the protocol machines' own types.
 //
 // Subjects, under a configurable prefix (default "baton") and fleet id:
 //   <prefix>.<fleet>.round            RoundStart    coordinator -> robots
@@ -152,11 +154,12 @@ func (x *Snapshot) GetReals() []float64 {
 // DecideParams fixes the Monte Carlo effort for the whole fleet, so every
 // robot computes exactly what the in-process search would.
 type DecideParams struct {
-	state         protoimpl.MessageState `protogen:"open.v1"`
-	Samples       uint32                 `protobuf:"varint,1,opt,name=samples,proto3" json:"samples,omitempty"`
-	Horizon       int32                  `protobuf:"varint,2,opt,name=horizon,proto3" json:"horizon,omitempty"`
-	TerminalCost  bool                   `protobuf:"varint,3,opt,name=terminal_cost,json=terminalCost,proto3" json:"terminal_cost,omitempty"`
-	FleetSeed     uint64                 `protobuf:"varint,4,opt,name=fleet_seed,json=fleetSeed,proto3" json:"fleet_seed,omitempty"`
+	state   protoimpl.MessageState `protogen:"open.v1"`
+	Samples uint32                 `protobuf:"varint,1,opt,name=samples,proto3" json:"samples,omitempty"`
+	// Base-policy steps simulated after the first step (0: the first step only).
+	Horizon       int32  `protobuf:"varint,2,opt,name=horizon,proto3" json:"horizon,omitempty"`
+	TerminalCost  bool   `protobuf:"varint,3,opt,name=terminal_cost,json=terminalCost,proto3" json:"terminal_cost,omitempty"`
+	FleetSeed     uint64 `protobuf:"varint,4,opt,name=fleet_seed,json=fleetSeed,proto3" json:"fleet_seed,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -375,8 +378,10 @@ type Decision struct {
 	Guessed   []uint32 `protobuf:"varint,6,rep,packed,name=guessed,proto3" json:"guessed,omitempty"`
 	ComputeUs uint64   `protobuf:"varint,7,opt,name=compute_us,json=computeUs,proto3" json:"compute_us,omitempty"`
 	// The robot's latest measured one-way hop to the NATS server (RTT / 2).
-	HopUs         uint64 `protobuf:"varint,8,opt,name=hop_us,json=hopUs,proto3" json:"hop_us,omitempty"`
-	Sender        string `protobuf:"bytes,9,opt,name=sender,proto3" json:"sender,omitempty"`
+	HopUs  uint64 `protobuf:"varint,8,opt,name=hop_us,json=hopUs,proto3" json:"hop_us,omitempty"`
+	Sender string `protobuf:"bytes,9,opt,name=sender,proto3" json:"sender,omitempty"`
+	// The coordinator run whose round this is (RoundStart.epoch).
+	Epoch         uint64 `protobuf:"varint,10,opt,name=epoch,proto3" json:"epoch,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -474,6 +479,13 @@ func (x *Decision) GetSender() string {
 	return ""
 }
 
+func (x *Decision) GetEpoch() uint64 {
+	if x != nil {
+		return x.Epoch
+	}
+	return 0
+}
+
 // Sighting is one thing a robot perceived: what (slick index, site index)
 // and its value (cell, wear level).
 type Sighting struct {
@@ -537,9 +549,12 @@ type Observation struct {
 	Robot    uint32 `protobuf:"varint,3,opt,name=robot,proto3" json:"robot,omitempty"`
 	Position int32  `protobuf:"zigzag32,4,opt,name=position,proto3" json:"position,omitempty"`
 	// The control actually carried out (hold when there was no decision).
-	Applied       int32       `protobuf:"varint,5,opt,name=applied,proto3" json:"applied,omitempty"`
-	Seen          []*Sighting `protobuf:"bytes,6,rep,name=seen,proto3" json:"seen,omitempty"`
-	Sender        string      `protobuf:"bytes,7,opt,name=sender,proto3" json:"sender,omitempty"`
+	Applied int32       `protobuf:"varint,5,opt,name=applied,proto3" json:"applied,omitempty"`
+	Seen    []*Sighting `protobuf:"bytes,6,rep,name=seen,proto3" json:"seen,omitempty"`
+	Sender  string      `protobuf:"bytes,7,opt,name=sender,proto3" json:"sender,omitempty"`
+	// The coordinator run the robot followed when it acted (0: none yet). A
+	// report with round 0, or from another run, says only where the robot is.
+	Epoch         uint64 `protobuf:"varint,8,opt,name=epoch,proto3" json:"epoch,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -623,6 +638,13 @@ func (x *Observation) GetSender() string {
 	return ""
 }
 
+func (x *Observation) GetEpoch() uint64 {
+	if x != nil {
+		return x.Epoch
+	}
+	return 0
+}
+
 // RoundClose ends a round with the joint control the fleet carries out.
 type RoundClose struct {
 	state    protoimpl.MessageState `protogen:"open.v1"`
@@ -631,8 +653,14 @@ type RoundClose struct {
 	Sender   string                 `protobuf:"bytes,3,opt,name=sender,proto3" json:"sender,omitempty"`
 	Controls []int32                `protobuf:"varint,4,rep,packed,name=controls,proto3" json:"controls,omitempty"`
 	// Robots that had no decision in time and hold.
-	Held          []uint32 `protobuf:"varint,5,rep,packed,name=held,proto3" json:"held,omitempty"`
-	LatencyUs     uint64   `protobuf:"varint,6,opt,name=latency_us,json=latencyUs,proto3" json:"latency_us,omitempty"`
+	Held []uint32 `protobuf:"varint,5,rep,packed,name=held,proto3" json:"held,omitempty"`
+	// From the round start to the last decision, or to the close when a
+	// decision was missing.
+	LatencyUs uint64 `protobuf:"varint,6,opt,name=latency_us,json=latencyUs,proto3" json:"latency_us,omitempty"`
+	Epoch     uint64 `protobuf:"varint,7,opt,name=epoch,proto3" json:"epoch,omitempty"`
+	// In a sequential round: the robot that did not decide in time, plus one
+	// (0: none). The held robots after it were only waiting for it.
+	Stalled       uint32 `protobuf:"varint,8,opt,name=stalled,proto3" json:"stalled,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -705,6 +733,20 @@ func (x *RoundClose) GetHeld() []uint32 {
 func (x *RoundClose) GetLatencyUs() uint64 {
 	if x != nil {
 		return x.LatencyUs
+	}
+	return 0
+}
+
+func (x *RoundClose) GetEpoch() uint64 {
+	if x != nil {
+		return x.Epoch
+	}
+	return 0
+}
+
+func (x *RoundClose) GetStalled() uint32 {
+	if x != nil {
+		return x.Stalled
 	}
 	return 0
 }
@@ -801,7 +843,7 @@ const file_baton_proto_rawDesc = "" +
 	"\x0fscenario_digest\x18\n" +
 	" \x01(\tR\x0escenarioDigest\x12!\n" +
 	"\fguess_source\x18\v \x01(\tR\vguessSource\x12\x14\n" +
-	"\x05epoch\x18\f \x01(\x04R\x05epoch\"\xe4\x01\n" +
+	"\x05epoch\x18\f \x01(\x04R\x05epoch\"\xfa\x01\n" +
 	"\bDecision\x12\x14\n" +
 	"\x05fleet\x18\x01 \x01(\tR\x05fleet\x12\x14\n" +
 	"\x05round\x18\x02 \x01(\x04R\x05round\x12\x14\n" +
@@ -812,10 +854,12 @@ const file_baton_proto_rawDesc = "" +
 	"\n" +
 	"compute_us\x18\a \x01(\x04R\tcomputeUs\x12\x15\n" +
 	"\x06hop_us\x18\b \x01(\x04R\x05hopUs\x12\x16\n" +
-	"\x06sender\x18\t \x01(\tR\x06sender\"4\n" +
+	"\x06sender\x18\t \x01(\tR\x06sender\x12\x14\n" +
+	"\x05epoch\x18\n" +
+	" \x01(\x04R\x05epoch\"4\n" +
 	"\bSighting\x12\x12\n" +
 	"\x04what\x18\x01 \x01(\x11R\x04what\x12\x14\n" +
-	"\x05value\x18\x02 \x01(\x11R\x05value\"\xc5\x01\n" +
+	"\x05value\x18\x02 \x01(\x11R\x05value\"\xdb\x01\n" +
 	"\vObservation\x12\x14\n" +
 	"\x05fleet\x18\x01 \x01(\tR\x05fleet\x12\x14\n" +
 	"\x05round\x18\x02 \x01(\x04R\x05round\x12\x14\n" +
@@ -823,7 +867,8 @@ const file_baton_proto_rawDesc = "" +
 	"\bposition\x18\x04 \x01(\x11R\bposition\x12\x18\n" +
 	"\aapplied\x18\x05 \x01(\x05R\aapplied\x12&\n" +
 	"\x04seen\x18\x06 \x03(\v2\x12.baton.v1.SightingR\x04seen\x12\x16\n" +
-	"\x06sender\x18\a \x01(\tR\x06sender\"\x9f\x01\n" +
+	"\x06sender\x18\a \x01(\tR\x06sender\x12\x14\n" +
+	"\x05epoch\x18\b \x01(\x04R\x05epoch\"\xcf\x01\n" +
 	"\n" +
 	"RoundClose\x12\x14\n" +
 	"\x05fleet\x18\x01 \x01(\tR\x05fleet\x12\x14\n" +
@@ -832,7 +877,9 @@ const file_baton_proto_rawDesc = "" +
 	"\bcontrols\x18\x04 \x03(\x05R\bcontrols\x12\x12\n" +
 	"\x04held\x18\x05 \x03(\rR\x04held\x12\x1d\n" +
 	"\n" +
-	"latency_us\x18\x06 \x01(\x04R\tlatencyUs\"S\n" +
+	"latency_us\x18\x06 \x01(\x04R\tlatencyUs\x12\x14\n" +
+	"\x05epoch\x18\a \x01(\x04R\x05epoch\x12\x18\n" +
+	"\astalled\x18\b \x01(\rR\astalled\"S\n" +
 	"\rReportRequest\x12\x14\n" +
 	"\x05fleet\x18\x01 \x01(\tR\x05fleet\x12\x14\n" +
 	"\x05epoch\x18\x02 \x01(\x04R\x05epoch\x12\x16\n" +

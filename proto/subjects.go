@@ -3,6 +3,7 @@ package batonpb
 import (
 	"fmt"
 	"regexp"
+	"strings"
 )
 
 // Subjects are the NATS subjects of one fleet.
@@ -34,3 +35,33 @@ func (s Subjects) DecisionOf(r int) string { return fmt.Sprintf("%s.decision.%d"
 
 // ObsOf is the subject robot r reports observations on.
 func (s Subjects) ObsOf(r int) string { return fmt.Sprintf("%s.obs.%d", s.prefix, r) }
+
+// RobotOf is the robot a decision or observation subject names, or -1 when
+// subject is neither (or names a number that is no robot id).
+func (s Subjects) RobotOf(subject string) int {
+	rest, ok := strings.CutPrefix(subject, s.prefix+".")
+	if !ok {
+		return -1
+	}
+	if r, ok := strings.CutPrefix(rest, "decision."); ok {
+		rest = r
+	} else if r, ok := strings.CutPrefix(rest, "obs."); ok {
+		rest = r
+	} else {
+		return -1
+	}
+	if rest == "" || len(rest) > 7 {
+		return -1
+	}
+	n := 0
+	for _, c := range rest {
+		if c < '0' || c > '9' {
+			return -1
+		}
+		n = n*10 + int(c-'0')
+	}
+	if len(rest) > 1 && rest[0] == '0' {
+		return -1 // "07" is not how robot 7's subject is spelled
+	}
+	return n
+}

@@ -227,3 +227,60 @@ func (r *Recompute) Fill(c *Context, missing []int, out []int) {
 		out[j], _ = r.d.Turn(c.X, j, r.known, decide.TurnSeed(c.Seed, int(c.Round), j))
 	}
 }
+
+// Sources builds, caches and names the guess sources round starts ask for,
+// with a fallback for names this robot cannot make (learned without a
+// classifier, or a name this build does not know). Not safe for concurrent
+// use.
+type Sources struct {
+	m        model.Model
+	opts     Options
+	fallback Source
+	cache    map[string]Source
+}
+
+// maxNamed bounds the cached names: names come from the bus.
+const maxNamed = 16
+
+// NewSources makes the set; fallback must be one of Names().
+func NewSources(m model.Model, fallback string, opts Options) (*Sources, error) {
+	fb, err := New(fallback, m, opts)
+	if err != nil {
+		return nil, err
+	}
+	return &Sources{m: m, opts: opts, fallback: fb, cache: map[string]Source{}}, nil
+}
+
+// Get is the named source; when it cannot be made, the fallback and why
+// (why is "" when the named source itself is returned, and is returned
+// non-empty only the first time for each name).
+func (s *Sources) Get(name string) (Source, string) {
+	if name == "" || name == s.fallback.Name() {
+		return s.fallback, ""
+	}
+	if src, ok := s.cache[name]; ok {
+		return src, ""
+	}
+	why := ""
+	var src Source
+	if name == "learned" && s.opts.Classifier == nil {
+		why = "no classifier loaded"
+	} else {
+		var err error
+		if src, err = New(name, s.m, s.opts); err != nil {
+			why = err.Error()
+		}
+	}
+	if why == "" {
+		s.cache[name] = src
+		return src, ""
+	}
+	if len(s.cache) < maxNamed {
+		s.cache[name] = s.fallback
+		return s.fallback, why
+	}
+	return s.fallback, ""
+}
+
+// Fallback is the source used for names that cannot be made.
+func (s *Sources) Fallback() Source { return s.fallback }

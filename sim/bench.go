@@ -15,6 +15,7 @@ import (
 	"google.golang.org/protobuf/proto"
 
 	"baton/agentd/node"
+	"baton/agentd/turn"
 	"baton/deploy/shell"
 	pb "baton/proto"
 	"baton/sim/harbor"
@@ -31,7 +32,7 @@ type sleeper struct {
 	n     int
 }
 
-func (s *sleeper) Turn(model.State, int, []int, uint64, *pb.DecideParams) int {
+func (s *sleeper) Turn(model.State, int, []int, uint64, turn.Params) int {
 	t0 := time.Now()
 	time.Sleep(s.d)
 	took := time.Since(t0)
@@ -214,11 +215,12 @@ func benchRounds(url string, m int, mode pb.Mode, compute time.Duration, rounds 
 			return benchRow{}, err
 		}
 		conns = append(conns, nc)
-		cfg := node.Config{Fleet: fleet, Subjects: subj, Robot: r, Sender: fmt.Sprintf("robot-%d", r), Model: hm, Compute: stub}
+		cfg := node.DefaultConfig()
+		cfg.Fleet, cfg.Subjects, cfg.Robot, cfg.Sender, cfg.Model, cfg.Compute = fleet, subj, r, fmt.Sprintf("robot-%d", r), hm, stub
 		if r == 0 {
 			cfg.OnRound = func(round uint64, at time.Time) { mu.Lock(); starts[round] = at; mu.Unlock() }
 		}
-		n := node.New(cfg, nc)
+		n := node.New(cfg, shell.NATSBus{Conn: nc})
 		go n.Run(ctx)
 	}
 	cc, err := nats.Connect(url)

@@ -19,15 +19,17 @@ func cmdCompare(args []string) error {
 	sc.register(fs)
 	episodes := fs.Int("episodes", 30, "seeded episodes per policy")
 	seed := fs.Uint64("seed", 1, "run seed (the same seed replays the same run)")
-	samples := fs.Int("samples", 16, "Monte Carlo samples per Q-factor")
-	horizon := fs.Int("horizon", 20, "base-policy steps simulated after the first step")
-	termCost := fs.Bool("terminal-cost", false, "add the scenario's cost-to-go estimate where simulations truncate")
+	dc := decide.DefaultConfig()
+	dc.RegisterFlags(fs)
 	maxJoint := fs.Int("max-joint", 1000, "largest number of joint controls for which all-at-once is run")
 	policies := fs.String("policies", "base,all-at-once,one-at-a-time", "comma-separated policies to run")
 	order := fs.String("order", "", "one-at-a-time turn order, e.g. 2,0,1 (default 0..m-1)")
-	workers := fs.Int("workers", 0, "goroutines per decision (default: all cores)")
+	fs.IntVar(&dc.Workers, "workers", 0, "goroutines per decision (default: all cores)")
 	asJSON := fs.Bool("json", false, "print one JSON object instead of the table")
 	if err := parse(fs, args); err != nil {
+		return err
+	}
+	if err := dc.Validate(); err != nil {
 		return err
 	}
 	m, err := sc.load()
@@ -40,11 +42,7 @@ func cmdCompare(args []string) error {
 	}
 	opts := compare.Options{
 		Episodes: *episodes, Seed: *seed, MaxJoint: *maxJoint, Order: ord, Now: time.Now,
-		Decide:   decide.Config{Samples: *samples, Horizon: *horizon, TerminalCost: *termCost, Workers: *workers},
-		Policies: strings.Split(*policies, ","),
-	}
-	if *horizon == 0 {
-		opts.Decide.Horizon = -1 // 0 means "first step only", not the default
+		Decide: dc, Policies: strings.Split(*policies, ","),
 	}
 	// A bar only for a person watching a terminal, never into a pipe or file.
 	if term.IsTerminal(int(os.Stderr.Fd())) {

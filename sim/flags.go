@@ -49,7 +49,7 @@ type scenarioFlags struct {
 func (s *scenarioFlags) register(fs *flag.FlagSet) {
 	fs.StringVar(&s.name, "scenario", "harbor", "scenario: "+strings.Join(scenarios.Names(), " or "))
 	fs.StringVar(&s.file, "config", "", "scenario YAML file (default: the scenario's built-in demo)")
-	fs.IntVar(&s.robots, "robots", 0, "number of robots (default: the file's or demo's own)")
+	fs.Var((*scenarios.Robots)(&s.robots), "robots", scenarios.RobotsUsage)
 }
 
 func (s *scenarioFlags) load() (model.Model, error) {

@@ -5,6 +5,7 @@ import (
 	"context"
 	"encoding/json"
 	"errors"
+	"flag"
 	"fmt"
 	"io"
 	"net"
@@ -13,20 +14,19 @@ import (
 	"os/exec"
 	"os/signal"
 	"path/filepath"
-	"slices"
-	"sort"
 	"strconv"
 	"strings"
 	"syscall"
 	"time"
 
 	"baton/agentd/node"
-	"baton/agentd/turn"
+	"baton/coordinator/clock"
 	"baton/deploy/shell"
-	bsignal "baton/signal"
 	"baton/signal/learn"
 	"baton/sim/episode"
+	"baton/sim/fleetsum"
 	"baton/sim/model"
+	"baton/sim/vfleet"
 	"baton/sim/world"
 )
 
@@ -49,23 +49,23 @@ func (f faults) Set(s string) error {
 	return nil
 }
 
-// fleetOpts configures a fleet on this machine.
+// fleetOpts configures a fleet on this machine. The round flags are the
+// coordinator's own (clock.Config), passed through unchanged.
 type fleetOpts struct {
-	sc           scenarioFlags
-	rounds       int
-	seed         uint64
-	mode         string
-	turnDeadline time.Duration
-	samples      int
-	horizon      int
-	period       time.Duration
-	fleet        string
-	prefix       string
-	logDir       string
-	slow         faults
-	guess        string // the fleet's guess source
-	guessModel   string // model file the coordinator distributes
-	exe          string // the binary that runs `agentd` and `coordinator`
+	sc         scenarioFlags
+	clock      clock.Config // Rounds: the rounds to play
+	seed       uint64       // run seed: world and fleet seeds derive from it
+	fleet      string
+	prefix     string
+	logDir     string
+	slow       faults
+	guessModel string // model file the coordinator distributes
+	exe        string // the binary that runs `agentd` and `coordinator`
+	// The virtual-time fleet instead of processes, with its link model.
+	virtual  bool
+	link        vfleet.Link
+	turnTime    time.Duration
+	virtualOnly []string // virtual-only flags given on the command line
 }
 
 // fleetRun is a running fleet: processes, the embedded NATS server and the
@@ -89,51 +89,20 @@ type fleetRun struct {
 	coordArgs []string
 }
 
-// roundResult is what the world saw of one round.
-type roundResult struct {
-	Round     int
-	Cost      float64
-	Controls  []int
-	Guessed   int // robots that decided with a guess
-	Held      int // robots without a decision (they hold)
-	LatencyUs uint64
-}
-
 func startFleet(ctx context.Context, o fleetOpts) (*fleetRun, error) {
 	m, err := o.sc.load()
 	if err != nil {
 		return nil, err
 	}
-	fm, ok := m.(model.Fleet)
-	if !ok {
-		return nil, fmt.Errorf("scenario %s cannot run as a fleet", m.Name())
-	}
-	if o.rounds < 1 {
-		return nil, fmt.Errorf("--rounds must be at least 1, got %d", o.rounds)
-	}
-	if _, ok := turn.ParseMode(o.mode); !ok {
-		return nil, fmt.Errorf("--mode %q: use sequential, parallel or hybrid", o.mode)
-	}
-	if o.turnDeadline <= 0 {
-		return nil, fmt.Errorf("--turn-deadline must be positive, got %s", o.turnDeadline)
-	}
-	if o.guess != "" && !slices.Contains(bsignal.Names(), o.guess) {
-		return nil, fmt.Errorf("--guess %q: use one of %s", o.guess, strings.Join(bsignal.Names(), ", "))
-	}
-	if o.guessModel != "" {
-		if _, _, err := learn.Load(o.guessModel, m); err != nil {
-			return nil, fmt.Errorf("--guess-model: %w", err)
-		}
-	}
-	for r := range o.slow {
-		if r >= m.Robots() {
-			return nil, fmt.Errorf("--slow %d=...: the fleet has robots 0..%d", r, m.Robots()-1)
-		}
+	fm, err := o.check(m)
+	if err != nil {
+		return nil, err
 	}
 	if err := os.MkdirAll(o.logDir, 0o755); err != nil {
 		return nil, fmt.Errorf("--logs: %w", err)
 	}
 	f := &fleetRun{o: o, m: fm, client: &http.Client{}, u: make([]int, m.Robots()), robots: make([]*proc, m.Robots())}
+	m = fm
 	f.ns, f.url, err = shell.EmbeddedNATS("127.0.0.1", 0)
 	if err != nil {
 		return nil, err
@@ -152,13 +121,10 @@ func startFleet(ctx context.Context, o fleetOpts) (*fleetRun, error) {
 		f.common = append(f.common, "--config", abs)
 	}
 	coordArgs := append([]string{"coordinator"}, f.common...)
-	coordArgs = append(coordArgs, "--seed", strconv.FormatUint(episode.FleetSeed(epSeed), 10),
-		"--samples", strconv.Itoa(o.samples), "--horizon", strconv.Itoa(o.horizon), "--mode", o.mode,
-		"--turn-deadline", o.turnDeadline.String(), "--period", o.period.String(), "--rounds", strconv.Itoa(o.rounds),
-		"--decision-log", f.decisionLog(), "--http", f.chttp, "--gossip", f.gossip)
-	if o.guess != "" {
-		coordArgs = append(coordArgs, "--guess", o.guess)
-	}
+	cc := o.clock
+	cc.Seed = episode.FleetSeed(epSeed)
+	coordArgs = append(coordArgs, cc.Args()...)
+	coordArgs = append(coordArgs, "--decision-log", f.decisionLog(), "--http", f.chttp, "--gossip", f.gossip)
 	if o.guessModel != "" {
 		abs, _ := filepath.Abs(o.guessModel)
 		coordArgs = append(coordArgs, "--guess-model", abs)
@@ -186,7 +152,7 @@ func startFleet(ctx context.Context, o fleetOpts) (*fleetRun, error) {
 		return nil, fmt.Errorf("coordinator did not see every robot join (see %s): %w", filepath.Join(o.logDir, "coordinator.log"), err)
 	}
 	f.world = world.New(fm, epSeed)
-	f.wait = time.Duration(m.Robots()+2)*o.turnDeadline + 10*time.Second
+	f.wait = time.Duration(m.Robots()+2)*o.clock.TurnBudget + 10*time.Second
 	f.report(0)
 	return f, nil
 }
@@ -288,24 +254,28 @@ func (f *fleetRun) report(round int) {
 	}
 }
 
-// play runs one round: read every robot's decision (hold without one),
-// step the world, report.
-func (f *fleetRun) play(round int) roundResult {
-	res := roundResult{Round: round}
+// play runs one round: read every robot's decision once its round closed
+// (hold without one), step the world, report.
+func (f *fleetRun) play(round int) fleetsum.Round {
+	res := fleetsum.Round{Round: round, Decided: make([]int, len(f.bases))}
 	for r, b := range f.bases {
 		v, err := getDecision(f.client, b, round, f.wait)
+		if err == nil {
+			// The round's latency, whoever held: a round everyone held
+			// for still took its time.
+			res.LatencyUs = max(res.LatencyUs, v.RoundLatencyUs)
+		}
 		if err != nil || v.Hold {
 			res.Held++
-			f.u[r] = 0 // no valid decision: the robot holds
+			res.Decided[r] = -1
 			continue
 		}
-		f.u[r] = v.Control
+		res.Decided[r] = v.Control
 		if len(v.Guessed) > 0 {
 			res.Guessed++
 		}
-		res.LatencyUs = max(res.LatencyUs, v.RoundLatencyUs)
 	}
-	res.Controls = append([]int(nil), f.u...)
+	f.u = res.Controls()
 	res.Cost = f.world.Apply(f.u)
 	f.report(round)
 	return res
@@ -319,88 +289,156 @@ func (f *fleetRun) close() {
 	}
 }
 
-type fleetSummary struct {
-	Scenario      string  `json:"scenario"`
-	Robots        int     `json:"robots"`
-	Rounds        int     `json:"rounds"`
-	Mode          string  `json:"mode"`
-	Guess         string  `json:"guess"`
-	Cost          float64 `json:"cost"`
-	CostPerRound  float64 `json:"cost_per_round"`
-	Batches       int     `json:"batches_finished"`
-	LatencyP50Ms  float64 `json:"round_latency_p50_ms"`
-	LatencyP99Ms  float64 `json:"round_latency_p99_ms"`
-	TurnsGuessed  int     `json:"turns_with_guesses"`
-	RobotsHeld    int     `json:"robot_rounds_held"`
-	AgentdMaxRSS  int64   `json:"agentd_max_rss_kb"`
-	DecisionLog   string  `json:"decision_log"`
-	ProcessLogDir string  `json:"process_logs"`
+// check validates the options against the scenario.
+func (o fleetOpts) check(m model.Model) (model.Fleet, error) {
+	fm, ok := m.(model.Fleet)
+	if !ok {
+		return nil, fmt.Errorf("scenario %s cannot run as a fleet", m.Name())
+	}
+	if o.clock.Rounds < 1 {
+		return nil, fmt.Errorf("--rounds %d: want at least 1 round to play", o.clock.Rounds)
+	}
+	c := o.clock
+	c.Model = fm
+	if err := c.Validate(); err != nil {
+		return nil, err
+	}
+	if o.guessModel != "" {
+		if _, _, err := learn.Load(o.guessModel, m); err != nil {
+			return nil, fmt.Errorf("--guess-model: %w", err)
+		}
+	}
+	for r := range o.slow {
+		if r >= m.Robots() {
+			return nil, fmt.Errorf("--slow %d=...: the fleet has robots 0..%d", r, m.Robots()-1)
+		}
+	}
+	if !o.virtual && len(o.virtualOnly) > 0 {
+		return nil, fmt.Errorf("--%s models the virtual fleet's links or compute: add --virtual", o.virtualOnly[0])
+	}
+	if o.link.Loss < 0 || o.link.Loss > 1 {
+		return nil, fmt.Errorf("--loss %g: want a probability in [0, 1]", o.link.Loss)
+	}
+	if o.link.Hop < 0 || o.link.Jitter < 0 || o.turnTime < 0 {
+		return nil, errors.New("--hop, --jitter and --turn-time: want durations >= 0")
+	}
+	return fm, nil
 }
 
+// The virtual fleet's defaults: a loopback-like hop and a small turn.
+const (
+	defaultHop      = 100 * time.Microsecond
+	defaultTurnTime = 2 * time.Millisecond
+)
+
 func cmdFleet(args []string) error {
-	fs := newFlags("fleet", "Runs a whole fleet on this machine: an embedded NATS server, the coordinator and\none agentd per robot as separate processes; the simulator plays the world through\neach robot's local interface and prints per-round progress and a summary.")
-	o := fleetOpts{slow: faults{}}
+	fs := newFlags("fleet", `Runs a whole fleet on this machine: an embedded NATS server, the coordinator and
+one agentd per robot as separate processes; the simulator plays the world through
+each robot's local interface and prints per-round progress and a summary.
+
+With --virtual the same fleet runs in one process in virtual time: the robots' and
+the coordinator's protocol machines exchange their real wire messages over an
+in-memory bus (--hop, --jitter, --loss), robots compute real rollout turns (each
+taking --turn-time of virtual time), nothing sleeps. With no loss it decides
+exactly what the real fleet decides for the same flags: compare decisions_sha256.`)
+	o := fleetOpts{slow: faults{}, clock: clock.DefaultConfig(), turnTime: defaultTurnTime}
+	o.clock.Rounds = 200
+	o.link.Hop = defaultHop
 	o.sc.register(fs)
-	fs.IntVar(&o.rounds, "rounds", 200, "rounds to play")
+	o.clock.RegisterFlags(fs)
 	fs.Uint64Var(&o.seed, "seed", 1, "run seed (world and fleet seeds derive from it, as in sim compare's episode 0)")
-	fs.StringVar(&o.mode, "mode", "hybrid", "sequential, parallel or hybrid")
-	fs.DurationVar(&o.turnDeadline, "turn-deadline", 200*time.Millisecond, "time each turn gets")
-	fs.IntVar(&o.samples, "samples", 16, "Monte Carlo samples per Q-factor")
-	fs.IntVar(&o.horizon, "horizon", 20, "base-policy steps simulated after the first step")
-	fs.DurationVar(&o.period, "period", 0, "start rounds at most this often (0: back to back)")
 	fs.StringVar(&o.fleet, "fleet", "demo", "fleet id")
 	fs.StringVar(&o.prefix, "prefix", "baton", "NATS subject prefix")
 	fs.StringVar(&o.logDir, "logs", "", "directory for the processes' logs and the decision log (default: a new temp dir)")
 	asJSON := fs.Bool("json", false, "print the summary as one JSON object (no per-round lines)")
 	quiet := fs.Bool("quiet", false, "no per-round lines")
 	fs.Var(o.slow, "slow", "fault injection: ROBOT=DELAY holds back that robot's decisions (repeatable)")
-	fs.StringVar(&o.guess, "guess", "base", "guess source for predecessors not heard in time: base, last, recompute or learned")
 	fs.StringVar(&o.guessModel, "guess-model", "", "model file from sim train, distributed to the robots (for --guess learned)")
+	fs.BoolVar(&o.virtual, "virtual", false, "run the fleet in one process in virtual time instead of as processes over NATS")
+	fs.DurationVar(&o.link.Hop, "hop", o.link.Hop, "virtual: one-way delay of every delivery on the in-memory bus")
+	fs.DurationVar(&o.link.Jitter, "jitter", 0, "virtual: plus a uniform random delay in [0, jitter)")
+	fs.Float64Var(&o.link.Loss, "loss", 0, "virtual: probability that a delivery is lost")
+	fs.DurationVar(&o.turnTime, "turn-time", o.turnTime, "virtual: virtual time one rollout turn takes")
 	if err := parse(fs, args); err != nil {
 		return err
 	}
+	o.link.Seed = o.seed
+	fs.Visit(func(f *flag.Flag) {
+		switch f.Name {
+		case "hop", "jitter", "loss", "turn-time":
+			o.virtualOnly = append(o.virtualOnly, f.Name)
+		}
+	})
 	var err error
 	if o.exe, err = os.Executable(); err != nil {
 		return err
 	}
-	if o.logDir == "" {
-		if o.logDir, err = os.MkdirTemp("", "baton-fleet-"); err != nil {
-			return err
-		}
-	}
 	ctx, stop := signal.NotifyContext(context.Background(), os.Interrupt, syscall.SIGTERM)
 	defer stop()
-	f, err := startFleet(ctx, o)
-	if err != nil {
-		return err
-	}
-	defer f.close()
-	m := f.m
-	if !*asJSON {
-		fmt.Printf("fleet %s: %s, %d robots, %s mode, NATS %s, logs in %s\n", o.fleet, m.Name(), m.Robots(), o.mode, f.url, o.logDir)
-	}
-	var lat []float64
-	sum := fleetSummary{Scenario: m.Name(), Robots: m.Robots(), Mode: o.mode, Guess: o.guess, DecisionLog: f.decisionLog(), ProcessLogDir: o.logDir}
-	for round := 1; round <= o.rounds && ctx.Err() == nil; round++ {
-		res := f.play(round)
-		lat = append(lat, float64(res.LatencyUs)/1000)
-		sum.Rounds, sum.TurnsGuessed, sum.RobotsHeld = round, sum.TurnsGuessed+res.Guessed, sum.RobotsHeld+res.Held
+	rounds := o.clock.Rounds
+	sum := fleetsum.Summary{Mode: o.clock.Mode.String(), Guess: o.clock.Guess, Virtual: o.virtual}
+	tally := fleetsum.NewTally()
+	line := func(r fleetsum.Round) {
+		tally.Add(&sum, r)
 		if !*asJSON && !*quiet {
 			fmt.Printf("round %4d/%d  stage cost %7.2f  latency %7.2f ms  guessed %2d  held %2d\n",
-				round, o.rounds, res.Cost, float64(res.LatencyUs)/1000, res.Guessed, res.Held)
+				r.Round, rounds, r.Cost, float64(r.LatencyUs)/1000, r.Guessed, r.Held)
 		}
 	}
-	for _, p := range f.robots {
-		if p != nil && !p.exited() {
-			sum.AgentdMaxRSS = max(sum.AgentdMaxRSS, rssKB(p.cmd.Process.Pid))
+	t0 := time.Now()
+	var w *world.World
+	if o.virtual {
+		vf, err := startVirtual(o)
+		if err != nil {
+			return err
 		}
+		m := vf.World().M
+		sum.Scenario, sum.Robots = m.Name(), m.Robots()
+		if !*asJSON {
+			fmt.Printf("fleet %s: %s, %d robots, %s mode, virtual time (hop %s, jitter %s, loss %g, turn %s)\n",
+				o.fleet, m.Name(), m.Robots(), o.clock.Mode, o.link.Hop, o.link.Jitter, o.link.Loss, o.turnTime)
+		}
+		for done := 0; done < rounds && ctx.Err() == nil; {
+			n := min(10, rounds-done) // check for Ctrl-C between batches
+			if _, err := vf.Run(n, line); err != nil {
+				return err
+			}
+			done += n
+		}
+		w = vf.World()
+		sum.WallSeconds = time.Since(t0).Seconds()
+		sum.ComputeShare = vf.ComputeTime().Seconds() / sum.WallSeconds
+	} else {
+		if o.logDir == "" {
+			if o.logDir, err = os.MkdirTemp("", "baton-fleet-"); err != nil {
+				return err
+			}
+		}
+		f, err := startFleet(ctx, o)
+		if err != nil {
+			return err
+		}
+		defer f.close()
+		m := f.m
+		sum.Scenario, sum.Robots, sum.DecisionLog, sum.ProcessLogDir = m.Name(), m.Robots(), f.decisionLog(), o.logDir
+		if !*asJSON {
+			fmt.Printf("fleet %s: %s, %d robots, %s mode, NATS %s, logs in %s\n", o.fleet, m.Name(), m.Robots(), o.clock.Mode, f.url, o.logDir)
+		}
+		t0 = time.Now()
+		for round := 1; round <= rounds && ctx.Err() == nil; round++ {
+			line(f.play(round))
+		}
+		sum.WallSeconds = time.Since(t0).Seconds()
+		for _, p := range f.robots {
+			if p != nil && !p.exited() {
+				sum.AgentdMaxRSS = max(sum.AgentdMaxRSS, rssKB(p.cmd.Process.Pid))
+			}
+		}
+		w = f.world
+		f.close()
 	}
-	sum.Cost, sum.Batches = f.world.Cost, f.world.Batch
-	if sum.Rounds > 0 {
-		sum.CostPerRound = sum.Cost / float64(sum.Rounds)
-	}
-	sum.LatencyP50Ms, sum.LatencyP99Ms = quantile(lat, 0.5), quantile(lat, 0.99)
-	f.close()
+	sum.Batches = w.Batch
+	tally.Finish(&sum)
 	interrupted := ctx.Err() != nil
 	if *asJSON {
 		enc := json.NewEncoder(os.Stdout)
@@ -408,19 +446,57 @@ func cmdFleet(args []string) error {
 		if err := enc.Encode(sum); err != nil || !interrupted {
 			return err
 		}
-		return fmt.Errorf("%w after %d of %d rounds", errInterrupted, sum.Rounds, o.rounds)
+		return fmt.Errorf("%w after %d of %d rounds", errInterrupted, sum.Rounds, rounds)
 	}
 	fmt.Printf("\n%d rounds, total cost %.2f (%.3f per round), %d batches of slicks or tasks finished\n", sum.Rounds, sum.Cost, sum.CostPerRound, sum.Batches)
 	fmt.Printf("round latency p50 %.2f ms, p99 %.2f ms; turns decided with guesses %d; robot-rounds held %d\n",
 		sum.LatencyP50Ms, sum.LatencyP99Ms, sum.TurnsGuessed, sum.RobotsHeld)
+	fmt.Printf("%.1f rounds per second of wall time", sum.RoundsPerSecond)
+	if o.virtual {
+		fmt.Printf(" (%.0f%% of it rollout compute)", 100*sum.ComputeShare)
+	}
+	fmt.Println()
 	if sum.AgentdMaxRSS > 0 {
 		fmt.Printf("largest agentd resident memory %.1f MB\n", float64(sum.AgentdMaxRSS)/1024)
 	}
-	fmt.Printf("decision log %s\n", f.decisionLog())
+	if sum.DecisionLog != "" {
+		fmt.Printf("decision log %s\n", sum.DecisionLog)
+	}
+	fmt.Printf("decisions sha256 %s\n", sum.DecisionsSHA256)
 	if interrupted {
-		return fmt.Errorf("%w after %d of %d rounds", errInterrupted, sum.Rounds, o.rounds)
+		return fmt.Errorf("%w after %d of %d rounds", errInterrupted, sum.Rounds, rounds)
 	}
 	return nil
+}
+
+// startVirtual builds the virtual-time fleet for the same options.
+func startVirtual(o fleetOpts) (*vfleet.Fleet, error) {
+	m, err := o.sc.load()
+	if err != nil {
+		return nil, err
+	}
+	fm, err := o.check(m)
+	if err != nil {
+		return nil, err
+	}
+	digest, err := shell.Digest(o.sc.name, o.sc.file, m.Robots())
+	if err != nil {
+		return nil, err
+	}
+	ep := episode.Seed(o.seed, 0)
+	c := o.clock
+	c.Fleet, c.Model, c.Digest, c.Seed, c.Epoch = o.fleet, fm, digest, episode.FleetSeed(ep), 1
+	rc := node.DefaultConfig()
+	cfg := vfleet.Config{Clock: c, Stale: rc.Stale, Guess: "base", GuessMargin: rc.GuessMargin, World: ep,
+		Link: o.link, TurnTime: o.turnTime, Slow: o.slow}
+	if o.guessModel != "" {
+		net, _, err := learn.Load(o.guessModel, m)
+		if err != nil {
+			return nil, fmt.Errorf("--guess-model: %w", err)
+		}
+		cfg.Guesses.Classifier = net
+	}
+	return vfleet.New(cfg)
 }
 
 // rssKB reads a process's resident set size from /proc (0 if unknown).
@@ -538,13 +614,4 @@ func stopAll(procs []*proc) {
 			<-p.done
 		}
 	}
-}
-
-func quantile(xs []float64, q float64) float64 {
-	if len(xs) == 0 {
-		return 0
-	}
-	s := append([]float64(nil), xs...)
-	sort.Float64s(s)
-	return s[int(q*float64(len(s)-1)+0.5)]
 }

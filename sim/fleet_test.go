@@ -13,9 +13,11 @@ import (
 	"time"
 
 	"baton/agentd/decide"
-	"baton/coordinator/hub"
+	"baton/agentd/turn"
+	"baton/coordinator/clock"
 	"baton/signal/learn"
 	"baton/sim/episode"
+	"baton/sim/fleetsum"
 	"baton/sim/harbor"
 	"baton/sim/world"
 )
@@ -29,8 +31,8 @@ func testFleet(t *testing.T, o fleetOpts) *fleetRun {
 	if o.slow == nil {
 		o.slow = faults{}
 	}
-	if o.mode == "" {
-		o.mode = "hybrid"
+	if o.turnTime == 0 {
+		o.turnTime = defaultTurnTime
 	}
 	ctx, cancel := context.WithTimeout(context.Background(), time.Minute)
 	defer cancel()
@@ -50,9 +52,20 @@ func testFleet(t *testing.T, o fleetOpts) *fleetRun {
 	return f
 }
 
+// opts is a fleet of robots on scenario with the coordinator's defaults,
+// 4 samples and a horizon of 6, adjusted by with.
+func opts(scenario string, robots, rounds int, seed uint64, with func(*clock.Config)) fleetOpts {
+	c := clock.DefaultConfig()
+	c.Rounds, c.Decide = rounds, decide.Config{Samples: 4, Horizon: 6}
+	if with != nil {
+		with(&c)
+	}
+	return fleetOpts{sc: scenarioFlags{name: scenario, robots: robots}, clock: c, seed: seed}
+}
+
 // record waits for round r's line in the coordinator's decision log (it is
 // written once the robots' reports for r are in).
-func record(t *testing.T, f *fleetRun, r int) hub.Record {
+func record(t *testing.T, f *fleetRun, r int) clock.Record {
 	t.Helper()
 	deadline := time.Now().Add(15 * time.Second)
 	for time.Now().Before(deadline) {
@@ -60,7 +73,7 @@ func record(t *testing.T, f *fleetRun, r int) hub.Record {
 			sc := bufio.NewScanner(file)
 			sc.Buffer(nil, 1<<24)
 			for sc.Scan() {
-				var rec hub.Record
+				var rec clock.Record
 				if json.Unmarshal(sc.Bytes(), &rec) == nil && rec.Round == uint64(r) {
 					file.Close()
 					return rec
@@ -71,7 +84,7 @@ func record(t *testing.T, f *fleetRun, r int) hub.Record {
 		time.Sleep(20 * time.Millisecond)
 	}
 	t.Fatalf("round %d never reached the decision log", r)
-	return hub.Record{}
+	return clock.Record{}
 }
 
 // With no faults, a fleet of separate agentd processes over a real NATS
@@ -85,8 +98,9 @@ func TestFleetMatchesInProcess(t *testing.T) {
 	}{{"harbor", 4}, {"upkeep", 3}} {
 		t.Run(sc.name, func(t *testing.T) {
 			const rounds, seed, samples, horizon = 12, 5, 6, 8
-			f := testFleet(t, fleetOpts{sc: scenarioFlags{name: sc.name, robots: sc.robots}, rounds: rounds,
-				seed: seed, mode: "sequential", turnDeadline: time.Second, samples: samples, horizon: horizon})
+			f := testFleet(t, opts(sc.name, sc.robots, rounds, seed, func(c *clock.Config) {
+				c.Mode, c.TurnBudget, c.Decide = turn.Sequential, time.Second, decide.Config{Samples: samples, Horizon: horizon}
+			}))
 			m := f.m
 			ep := episode.Seed(seed, 0)
 			ref := world.New(m, ep)
@@ -96,8 +110,8 @@ func TestFleetMatchesInProcess(t *testing.T) {
 				wantInts, wantReals := m.Flatten(ref.Y, nil, nil)
 				d.OneAtATime(ref.Y, nil, episode.FleetSeed(ep), r, want)
 				got := f.play(r)
-				if !slices.Equal(got.Controls, want) {
-					t.Fatalf("round %d: fleet decided %v, in-process %v", r, got.Controls, want)
+				if !slices.Equal(got.Decided, want) {
+					t.Fatalf("round %d: fleet decided %v, in-process %v", r, got.Decided, want)
 				}
 				if got.Guessed != 0 || got.Held != 0 {
 					t.Fatalf("round %d: %d guessed, %d held with no faults", r, got.Guessed, got.Held)
@@ -117,8 +131,9 @@ func TestFleetMatchesInProcess(t *testing.T) {
 // by the last deadline, and the log says who was guessed.
 func TestFleetSlowRobotIsGuessed(t *testing.T) {
 	const budget = 150 * time.Millisecond
-	f := testFleet(t, fleetOpts{sc: scenarioFlags{name: "harbor", robots: 4}, rounds: 4, seed: 2,
-		turnDeadline: budget, samples: 4, horizon: 6, slow: faults{1: 2 * time.Second}})
+	o := opts("harbor", 4, 4, 2, func(c *clock.Config) { c.TurnBudget = budget })
+	o.slow = faults{1: 2 * time.Second}
+	f := testFleet(t, o)
 	for r := 1; r <= 3; r++ {
 		res := f.play(r)
 		rec := record(t, f, r)
@@ -155,10 +170,9 @@ func TestFleetSlowRobotIsGuessed(t *testing.T) {
 // rounds, after which no round waits for it; restarting brings it back.
 func TestFleetMembership(t *testing.T) {
 	const budget = 150 * time.Millisecond
-	f := testFleet(t, fleetOpts{sc: scenarioFlags{name: "harbor", robots: 4}, rounds: 200, seed: 3,
-		turnDeadline: budget, samples: 4, horizon: 6})
+	f := testFleet(t, opts("harbor", 4, 200, 3, func(c *clock.Config) { c.TurnBudget = budget }))
 	round := 0
-	next := func() (roundResult, hub.Record) {
+	next := func() (fleetsum.Round, clock.Record) {
 		round++
 		res := f.play(round)
 		return res, record(t, f, round)
@@ -226,8 +240,7 @@ func TestUnreachableNATS(t *testing.T) {
 // re-join gossip), starts again from their reports, and they take its
 // rounds even though it numbers them from 1 again.
 func TestFleetCoordinatorRestart(t *testing.T) {
-	f := testFleet(t, fleetOpts{sc: scenarioFlags{name: "harbor", robots: 3}, rounds: 200, seed: 4,
-		turnDeadline: 200 * time.Millisecond, samples: 4, horizon: 6})
+	f := testFleet(t, opts("harbor", 3, 200, 4, nil))
 	for r := 1; r <= 3; r++ {
 		if res := f.play(r); res.Held != 0 {
 			t.Fatalf("round %d: %d held", r, res.Held)
@@ -292,8 +305,11 @@ func TestFleetLearnedGuesses(t *testing.T) {
 		t.Fatal(err)
 	}
 	const rounds, seed, samples, horizon = 12, 8, 4, 6
-	f := testFleet(t, fleetOpts{sc: scenarioFlags{name: "harbor", robots: 3}, rounds: rounds, seed: seed,
-		mode: "parallel", turnDeadline: time.Second, samples: samples, horizon: horizon, guess: "learned", guessModel: file})
+	o := opts("harbor", 3, rounds, seed, func(c *clock.Config) {
+		c.Mode, c.TurnBudget, c.Guess, c.Decide = turn.Parallel, time.Second, "learned", decide.Config{Samples: samples, Horizon: horizon}
+	})
+	o.guessModel = file
+	f := testFleet(t, o)
 	ep := episode.Seed(seed, 0)
 	ref := world.New(f.m, ep)
 	d := decide.New(f.m, decide.Config{Samples: samples, Horizon: horizon})
@@ -324,10 +340,10 @@ func TestFleetLearnedGuesses(t *testing.T) {
 			differ++
 		}
 		got := f.play(r)
-		if r >= 3 && !slices.Equal(got.Controls, want) {
-			t.Fatalf("round %d: fleet %v, in-process with learned guesses %v", r, got.Controls, want)
+		if r >= 3 && !slices.Equal(got.Decided, want) {
+			t.Fatalf("round %d: fleet %v, in-process with learned guesses %v", r, got.Decided, want)
 		}
-		ref.Apply(got.Controls)
+		ref.Apply(got.Controls())
 	}
 	t.Logf("learned guesses changed the joint decision in %d of the %d rounds checked", differ, rounds-2)
 	if differ == 0 {

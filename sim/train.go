@@ -73,8 +73,10 @@ func cmdTrain(args []string) error {
 		return fmt.Errorf("--eval-episodes must be at least 2 for a confidence interval, got %d", *evalEpisodes)
 	case *iterations < 1 || *iterations > 50:
 		return fmt.Errorf("--iterations must be between 1 and 50, got %d", *iterations)
-	case *samples < 1 || *horizon < 1 || *epochs < 1:
-		return fmt.Errorf("--samples, --horizon and --epochs must be at least 1")
+	case *epochs < 1:
+		return fmt.Errorf("--epochs %d: want at least 1", *epochs)
+	case (decide.Config{Samples: *samples, Horizon: *horizon}).Validate() != nil:
+		return (decide.Config{Samples: *samples, Horizon: *horizon}).Validate()
 	}
 	var layers []int
 	for _, f := range strings.Split(*hidden, ",") {

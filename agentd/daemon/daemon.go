@@ -23,7 +23,6 @@ import (
 
 	"baton/agentd/node"
 	"baton/deploy/shell"
-	bsignal "baton/signal"
 	"baton/signal/learn"
 )
 
@@ -35,7 +34,8 @@ serves the robot's own software on a local HTTP interface:
 
   GET  /v1/decision?round=N&wait=2s[&closed=1]   this robot's decision; hold:true when it has none
   POST /v1/observation   {"round":N,"position":P,"applied":C,"seen":[{"what":i,"value":v}]}
-  GET  /healthz, GET /metrics
+  GET  /healthz          200 while it can act on rounds; 503 and why while it holds
+  GET  /metrics          Prometheus
 
 usage: agentd --robot N --nats URL [flags]
 `
@@ -45,15 +45,13 @@ func Main(args []string) int {
 	fs := flag.NewFlagSet("agentd", flag.ContinueOnError)
 	var c shell.Common
 	c.Register(fs, "must match the coordinator's")
+	cfg := node.DefaultConfig()
+	cfg.RegisterFlags(fs)
 	robot := fs.Int("robot", -1, "this robot's id, 0..robots-1 (required)")
 	httpAddr := fs.String("http", "127.0.0.1:7400", "local interface for the robot's software (localhost only by default)")
 	gossip := fs.String("gossip", "127.0.0.1:0", "gossip bind host:port (port 0 picks one)")
 	join := fs.String("join", "", "gossip address(es) of the coordinator or any member, comma-separated")
-	guess := fs.String("guess", "base", "fallback guess source, used when a round start names none or one this robot cannot make: "+
-		strings.Join(bsignal.Names(), ", ")+" (the coordinator's --guess picks the fleet's)")
-	guessModel := fs.String("guess-model", "", "trained guess model file (signal/learn) for learned guesses; without one they are base guesses")
-	delay := fs.Duration("inject-delay", 0, "fault injection: hold back this robot's decisions by this long")
-	stale := fs.Duration("stale", 10*time.Second, "hold when no round has started for this long")
+	guessModel := fs.String("guess-model", "", "trained guess model file (signal/learn) for learned guesses; without one they are base guesses until the fleet distributes one")
 	if code, ok := shell.Parse(fs, synopsis, args); !ok {
 		return code
 	}
@@ -72,32 +70,29 @@ func Main(args []string) int {
 		return fail(err)
 	}
 	m := fl.Model
-	if *robot >= m.Robots() {
-		return fail(fmt.Errorf("--robot %d: this fleet has robots 0..%d", *robot, m.Robots()-1))
-	}
-	subj, digest := fl.Subjects, fl.Digest
-	// Without a guess model learned guesses are base guesses: the node
-	// says so once when it first needs one.
-	var guessOpts bsignal.Options
+	cfg.Fleet, cfg.Subjects, cfg.Robot, cfg.Model, cfg.Digest = c.Fleet, fl.Subjects, *robot, m, fl.Digest
+	cfg.Sender = fmt.Sprintf("robot-%d@%d", *robot, os.Getpid())
 	if *guessModel != "" {
 		net, meta, err := learn.Load(*guessModel, m)
 		if err != nil {
 			return fail(fmt.Errorf("--guess-model: %w", err))
 		}
-		guessOpts.Classifier = net
+		cfg.Guesses.Classifier = net
 		lg.Info("guess model loaded", zap.String("file", *guessModel), zap.Uint64("version", meta.Version),
 			zap.Int("trained_robots", meta.RobotsTrained), zap.Float64("test_accuracy", meta.TestAccuracy))
 	}
-	src, err := bsignal.New(*guess, m, guessOpts)
-	if err != nil {
-		return fail(fmt.Errorf("--guess: %w", err))
+	if err := cfg.Validate(); err != nil {
+		return fail(err)
 	}
 	ln, err := net.Listen("tcp", *httpAddr)
 	if err != nil {
 		return fail(fmt.Errorf("--http %s: %w", *httpAddr, err))
 	}
-	sender := fmt.Sprintf("robot-%d@%d", *robot, os.Getpid())
-	nc, err := shell.Connect(c.NATS, c.Creds, sender, c.ConnectTimeout, lg)
+	reg := prometheus.NewRegistry()
+	reg.MustRegister(collectors.NewGoCollector(), collectors.NewProcessCollector(collectors.ProcessCollectorOpts{}))
+	cfg.Log, cfg.Metrics = lg, node.NewMetrics(reg)
+	nc, err := shell.Connect(c.NATS, c.Creds, cfg.Sender, c.ConnectTimeout, lg,
+		shell.ClientErrors(lg, func(kind string) { cfg.Metrics.NATSErrors.WithLabelValues(kind).Inc() }))
 	if err != nil {
 		return fail(err)
 	}
@@ -116,13 +111,9 @@ func Main(args []string) int {
 		_ = ml.Leave(time.Second)
 		_ = ml.Shutdown()
 	}()
-
-	reg := prometheus.NewRegistry()
-	reg.MustRegister(collectors.NewGoCollector(), collectors.NewProcessCollector(collectors.ProcessCollectorOpts{}))
 	bucket := shell.ModelBucket(c.Prefix, c.Fleet)
-	n := node.New(node.Config{Fleet: c.Fleet, Subjects: subj, Robot: *robot, Sender: sender, Model: m, Digest: digest,
-		Guess: src, Guesses: guessOpts, InjectDelay: *delay, Stale: *stale, Log: lg, Metrics: node.NewMetrics(reg),
-		FetchModel: func(ctx context.Context, v uint64) ([]byte, error) { return shell.FetchModel(ctx, nc, bucket, v) }}, nc)
+	cfg.FetchModel = func(ctx context.Context, v uint64) ([]byte, error) { return shell.FetchModel(ctx, nc, bucket, v) }
+	n := node.New(cfg, shell.NATSBus{Conn: nc})
 	ctx, stop := signal.NotifyContext(context.Background(), os.Interrupt, syscall.SIGTERM)
 	defer stop()
 	go shell.KeepJoined(ctx, ml, joinList, c.Fleet+"/coordinator", lg)
@@ -134,7 +125,7 @@ func Main(args []string) int {
 		}
 	}()
 	lg.Info("agentd up", zap.Int("robot", *robot), zap.String("fleet", c.Fleet), zap.String("scenario", m.Name()),
-		zap.String("http", ln.Addr().String()), zap.String("nats", nc.ConnectedUrl()), zap.String("digest", digest))
+		zap.String("http", ln.Addr().String()), zap.String("nats", nc.ConnectedUrl()), zap.String("digest", fl.Digest))
 	err = n.Run(ctx)
 	sctx, cancel := context.WithTimeout(context.Background(), 2*time.Second)
 	defer cancel()

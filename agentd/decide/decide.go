@@ -23,31 +23,27 @@ import (
 	"baton/sim/model"
 )
 
-// Config sets the Monte Carlo effort.
+// Config sets the Monte Carlo effort. DefaultConfig gives the documented
+// defaults and Validate the documented bounds; New clamps values outside
+// them only so it can never divide by zero or allocate without bound.
 type Config struct {
-	// Samples per Q-factor (default 16).
+	// Samples per Q-factor: 1..MaxSamples.
 	Samples int
 	// Horizon is the number of base-policy steps simulated after the first
-	// step (default 20).
+	// step: 0..MaxHorizon (0: the first step only).
 	Horizon int
 	// TerminalCost adds the model's cost-to-go estimate where a simulation
 	// is truncated (models implementing model.TerminalCoster).
 	TerminalCost bool
-	// Workers is the number of goroutines (default GOMAXPROCS).
+	// Workers is the number of goroutines (0: GOMAXPROCS).
 	Workers int
-	// MaxJoint caps all-at-once searches (default 100000 joint controls).
+	// MaxJoint caps all-at-once searches (0: 100000 joint controls).
 	MaxJoint int
 }
 
 func (c Config) withDefaults() Config {
-	if c.Samples <= 0 {
-		c.Samples = 16
-	}
-	if c.Horizon < 0 {
-		c.Horizon = 0
-	} else if c.Horizon == 0 {
-		c.Horizon = 20
-	}
+	c.Samples = min(max(c.Samples, 1), MaxSamples)
+	c.Horizon = min(max(c.Horizon, 0), MaxHorizon)
 	if c.Workers <= 0 {
 		c.Workers = runtime.GOMAXPROCS(0)
 	}

@@ -13,35 +13,32 @@ import (
 
 	"github.com/prometheus/client_golang/prometheus"
 	"github.com/prometheus/client_golang/prometheus/promhttp"
+
+	"baton/agentd/turn"
 )
 
 // Handler serves the robot's local interface:
 //
 //	GET  /v1/decision?round=N&wait=2s&closed=1   this robot's decision (hold when none)
 //	POST /v1/observation                         {"round":N,"position":P,"applied":C,"seen":[{"what":i,"value":v}]}
-//	GET  /healthz                                200 when connected to NATS
+//	GET  /healthz                                200 while the robot can act on rounds; 503 and why when it holds
 //	GET  /metrics                                Prometheus
 func (n *Node) Handler(reg prometheus.Gatherer) http.Handler {
 	mux := http.NewServeMux()
 	mux.HandleFunc("GET /v1/decision", n.serveDecision)
 	mux.HandleFunc("POST /v1/observation", n.serveObservation)
 	mux.HandleFunc("GET /healthz", func(w http.ResponseWriter, r *http.Request) {
-		if !n.nc.IsConnected() {
-			http.Error(w, "not connected to NATS: "+n.nc.Status().String(), http.StatusServiceUnavailable)
+		ok, why := n.Health()
+		if !ok {
+			http.Error(w, fmt.Sprintf("robot %d fleet %s: %s", n.cfg.Robot, n.cfg.Fleet, why), http.StatusServiceUnavailable)
 			return
 		}
-		fmt.Fprintf(w, "ok robot %d fleet %s round %d\n", n.cfg.Robot, n.cfg.Fleet, n.latestRound())
+		fmt.Fprintf(w, "ok robot %d fleet %s %s\n", n.cfg.Robot, n.cfg.Fleet, why)
 	})
 	if reg != nil {
 		mux.Handle("GET /metrics", promhttp.HandlerFor(reg, promhttp.HandlerOpts{}))
 	}
 	return mux
-}
-
-func (n *Node) latestRound() uint64 {
-	n.mu.Lock()
-	defer n.mu.Unlock()
-	return n.latest
 }
 
 func httpError(w http.ResponseWriter, code int, msg string) {
@@ -77,29 +74,14 @@ func (n *Node) serveDecision(w http.ResponseWriter, r *http.Request) {
 }
 
 func (n *Node) serveObservation(w http.ResponseWriter, r *http.Request) {
-	body, err := io.ReadAll(io.LimitReader(r.Body, 1<<20))
+	body, err := io.ReadAll(io.LimitReader(r.Body, MaxObservationBytes+1))
 	if err != nil {
 		httpError(w, http.StatusBadRequest, "reading the observation: "+err.Error())
 		return
 	}
-	// Every field but "seen" is required: a report that leaves out the
-	// position would silently put the robot at cell 0.
-	var fields map[string]json.RawMessage
-	if err := json.Unmarshal(body, &fields); err != nil || fields == nil {
-		httpError(w, http.StatusBadRequest, `observation must be one JSON object like {"round":N,"position":P,"applied":C,"seen":[...]}`)
-		return
-	}
-	for _, f := range []string{"round", "position", "applied"} {
-		if _, ok := fields[f]; !ok {
-			httpError(w, http.StatusBadRequest, fmt.Sprintf("observation lacks %q", f))
-			return
-		}
-	}
-	var rep Report
-	dec := json.NewDecoder(bytes.NewReader(body))
-	dec.DisallowUnknownFields()
-	if err := dec.Decode(&rep); err != nil {
-		httpError(w, http.StatusBadRequest, "observation: "+strings.TrimPrefix(err.Error(), "json: "))
+	rep, err := ParseReport(body)
+	if err != nil {
+		httpError(w, http.StatusBadRequest, err.Error())
 		return
 	}
 	if err := n.Observe(rep); err != nil {
@@ -113,4 +95,36 @@ func (n *Node) serveObservation(w http.ResponseWriter, r *http.Request) {
 	w.Header().Set("Content-Type", "application/json")
 	w.WriteHeader(http.StatusAccepted)
 	fmt.Fprintln(w, `{"ok":true}`)
+}
+
+// MaxObservationBytes bounds an observation body.
+const MaxObservationBytes = 1 << 20
+
+// ParseReport reads an observation body: one JSON object with round,
+// position and applied (all required) and seen. Errors say what is wrong.
+func ParseReport(body []byte) (Report, error) {
+	if len(body) > MaxObservationBytes {
+		return Report{}, fmt.Errorf("observation over %d bytes", MaxObservationBytes)
+	}
+	// Every field but "seen" is required: a report that leaves out the
+	// position would silently put the robot at cell 0.
+	var fields map[string]json.RawMessage
+	if err := json.Unmarshal(body, &fields); err != nil || fields == nil {
+		return Report{}, errors.New(`observation must be one JSON object like {"round":N,"position":P,"applied":C,"seen":[...]}`)
+	}
+	for _, f := range []string{"round", "position", "applied"} {
+		if _, ok := fields[f]; !ok {
+			return Report{}, fmt.Errorf("observation lacks %q", f)
+		}
+	}
+	var rep Report
+	dec := json.NewDecoder(bytes.NewReader(body))
+	dec.DisallowUnknownFields()
+	if err := dec.Decode(&rep); err != nil {
+		return Report{}, errors.New("observation: " + strings.TrimPrefix(err.Error(), "json: "))
+	}
+	if len(rep.Seen) > turn.MaxSightings {
+		return Report{}, fmt.Errorf("observation with %d sightings, over %d", len(rep.Seen), turn.MaxSightings)
+	}
+	return rep, nil
 }

@@ -1,6 +1,10 @@
 package node
 
-import "github.com/prometheus/client_golang/prometheus"
+import (
+	"github.com/prometheus/client_golang/prometheus"
+
+	"baton/agentd/turn"
+)
 
 // Metrics are the daemon's Prometheus series.
 type Metrics struct {
@@ -12,6 +16,8 @@ type Metrics struct {
 	Rounds      prometheus.Counter
 	Hop         prometheus.Gauge
 	Model       prometheus.Gauge
+	Resyncs     prometheus.Counter
+	NATSErrors  *prometheus.CounterVec
 }
 
 // NewMetrics registers the series on reg (nil: a fresh registry).
@@ -35,10 +41,17 @@ func NewMetrics(reg prometheus.Registerer) *Metrics {
 			Name: "baton_hop_seconds", Help: "Latest one-way hop to the NATS server (RTT/2)."}),
 		Model: prometheus.NewGauge(prometheus.GaugeOpts{
 			Name: "baton_guess_model_version", Help: "Guess model version in use (0: none from the fleet)."}),
+		Resyncs: prometheus.NewCounter(prometheus.CounterOpts{
+			Name: "baton_resyncs_total", Help: "Times this robot followed a run whose round starts it had refused, because the one it followed went quiet."}),
+		NATSErrors: prometheus.NewCounterVec(prometheus.CounterOpts{
+			Name: "baton_nats_client_errors_total", Help: "Asynchronous NATS client errors, by kind (slow-consumer, permission, other)."}, []string{"kind"}),
+	}
+	for _, r := range turn.Reasons() {
+		m.Dropped.WithLabelValues(string(r)) // every reason shows, from 0
 	}
 	if reg == nil {
 		reg = prometheus.NewRegistry()
 	}
-	reg.MustRegister(m.TurnLatency, m.Compute, m.Turns, m.Dropped, m.Late, m.Rounds, m.Hop, m.Model)
+	reg.MustRegister(m.TurnLatency, m.Compute, m.Turns, m.Dropped, m.Late, m.Rounds, m.Hop, m.Model, m.Resyncs, m.NATSErrors)
 	return m
 }

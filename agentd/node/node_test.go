@@ -3,6 +3,7 @@ package node
 import (
 	"context"
 	"encoding/json"
+	"io"
 	"net/http"
 	"net/http/httptest"
 	"slices"
@@ -18,9 +19,9 @@ import (
 	"google.golang.org/protobuf/proto"
 
 	"baton/agentd/decide"
+	"baton/agentd/turn"
 	"baton/deploy/shell"
 	pb "baton/proto"
-	"baton/signal"
 	"baton/sim/harbor"
 	"baton/sim/model"
 )
@@ -28,7 +29,7 @@ import (
 // fixed is a stub Computer: always the same control, no compute.
 type fixed int
 
-func (f fixed) Turn(model.State, int, []int, uint64, *pb.DecideParams) int { return int(f) }
+func (f fixed) Turn(model.State, int, []int, uint64, turn.Params) int { return int(f) }
 
 type rig struct {
 	n     *Node
@@ -66,10 +67,14 @@ func newRigWith(t *testing.T, with func(*Config)) *rig {
 	subj, _ := pb.NewSubjects("baton", "yard")
 	core, logs := observer.New(zap.InfoLevel)
 	met := NewMetrics(prometheus.NewRegistry())
-	cfg := Config{Fleet: "yard", Subjects: subj, Robot: 1, Sender: "robot-1", Model: m, Digest: "d1",
-		Compute: fixed(harbor.East), Log: zap.New(core), Metrics: met}
+	cfg := DefaultConfig()
+	cfg.Fleet, cfg.Subjects, cfg.Robot, cfg.Sender, cfg.Model, cfg.Digest = "yard", subj, 1, "robot-1", m, "d1"
+	cfg.Compute, cfg.Log, cfg.Metrics = fixed(harbor.East), zap.New(core), met
 	if with != nil {
 		with(&cfg)
+	}
+	if err := cfg.Validate(); err != nil {
+		t.Fatal(err)
 	}
 	nodeConn := connect()
 	if cfg.FetchModel == nil {
@@ -77,7 +82,7 @@ func newRigWith(t *testing.T, with func(*Config)) *rig {
 			return shell.FetchModel(ctx, nodeConn, shell.ModelBucket("baton", "yard"), v)
 		}
 	}
-	n := New(cfg, nodeConn)
+	n := New(cfg, shell.NATSBus{Conn: nodeConn})
 	// The server has subscriptions of its own (JetStream's API): count ours
 	// from here.
 	baseSubs := ns.NumSubscriptions()
@@ -132,7 +137,7 @@ func waitFor(t *testing.T, cond func() bool) {
 func TestBadInputOverNATS(t *testing.T) {
 	r := newRig(t)
 	r.start(5, []uint32{0, 1, 2}, nil)
-	waitFor(t, func() bool { return r.n.latestRound() == 5 })
+	waitFor(t, func() bool { return r.n.Round() == 5 })
 	dec := func(d *pb.Decision) { r.pub(r.subj.DecisionOf(int(d.GetRobot())), d) }
 	cases := []struct {
 		name   string
@@ -143,10 +148,24 @@ func TestBadInputOverNATS(t *testing.T) {
 		{"another fleet", "foreign", func() { dec(&pb.Decision{Fleet: "dock", Round: 5, Robot: 0, Control: 1}) }},
 		{"replayed old round", "stale", func() { dec(&pb.Decision{Fleet: "yard", Round: 3, Robot: 0, Control: 1}) }},
 		{"robot not in the order", "not-in-order", func() { dec(&pb.Decision{Fleet: "yard", Round: 5, Robot: 3, Control: 1}) }},
-		{"out-of-range control", "malformed", func() { dec(&pb.Decision{Fleet: "yard", Round: 5, Robot: 2, Control: 99}) }},
+		{"out-of-range control", "out-of-range", func() { dec(&pb.Decision{Fleet: "yard", Round: 5, Robot: 2, Control: 99}) }},
+		{"decision on another robot's subject", "wrong-subject", func() {
+			r.pub(r.subj.DecisionOf(2), &pb.Decision{Fleet: "yard", Round: 5, Robot: 0, Control: 1})
+		}},
+		{"oversize decision", "oversize", func() { r.nc.Publish(r.subj.DecisionOf(0), make([]byte, 2<<20)); r.nc.Flush() }},
+		{"far-future round start", "future", func() { r.start(5+turn.RoundWindow+1, []uint32{0, 1}, nil) }},
+		{"absurd Monte Carlo effort", "out-of-bounds", func() {
+			r.start(6, []uint32{0, 1}, func(rs *pb.RoundStart) { rs.Params.Samples = 1 << 31 })
+		}},
+		{"close with a control that does not exist", "out-of-range", func() {
+			r.pub(r.subj.Close, &pb.RoundClose{Fleet: "yard", Round: 5, Controls: []int32{-99, 0, 0, 0}})
+		}},
+		{"close of a round not started", "future", func() {
+			r.pub(r.subj.Close, &pb.RoundClose{Fleet: "yard", Round: 6, Controls: []int32{0, 0, 0, 0}})
+		}},
 		{"malformed round start", "malformed", func() { r.nc.Publish(r.subj.Round, []byte("not protobuf")); r.nc.Flush() }},
 		{"round start for another fleet", "foreign", func() { r.start(6, []uint32{0, 1}, func(rs *pb.RoundStart) { rs.Fleet = "dock" }) }},
-		{"round start from another scenario file", "foreign", func() {
+		{"round start from another scenario file", "wrong-scenario", func() {
 			r.start(6, []uint32{0, 1}, func(rs *pb.RoundStart) { rs.ScenarioDigest = "other" })
 		}},
 		{"round start with a broken snapshot", "malformed", func() {
@@ -162,7 +181,7 @@ func TestBadInputOverNATS(t *testing.T) {
 		reason, n := c.reason, want[c.reason]
 		waitFor(t, func() bool { return testutil.ToFloat64(r.met.Dropped.WithLabelValues(reason)) == n })
 	}
-	if got := r.n.latestRound(); got != 5 {
+	if got := r.n.Round(); got != 5 {
 		t.Fatalf("a bad round start replaced round 5: now %d", got)
 	}
 	seen := map[string]int{}
@@ -274,7 +293,7 @@ func TestLocalInterface(t *testing.T) {
 // recording is a stub Computer that hands the test what it was asked with.
 type recording chan []int
 
-func (c recording) Turn(_ model.State, _ int, known []int, _ uint64, _ *pb.DecideParams) int {
+func (c recording) Turn(_ model.State, _ int, known []int, _ uint64, _ turn.Params) int {
 	c <- slices.Clone(known)
 	return harbor.East
 }
@@ -289,7 +308,7 @@ func TestGuessSourceFromRoundStart(t *testing.T) {
 	base := r.m.Base(r.x, 0)
 	other := (base + 1) % 5 // a control robot 0's base guess would not give
 	params := &pb.DecideParams{Samples: 2, Horizon: 2, FleetSeed: 1}
-	d := decide.New(r.m, decideConfig(params))
+	d := decide.New(r.m, decide.Config{Samples: 2, Horizon: 2})
 	recomputed := func(round int) int {
 		c, _ := d.Turn(r.x, 0, []int{-1, -1, -1, -1}, decide.TurnSeed(1, round, 0))
 		return c
@@ -342,7 +361,7 @@ func TestGuessSourceFromRoundStart(t *testing.T) {
 		t.Errorf("no source named: guessed %d, want the fallback's (base) %d", got, base)
 	}
 	for _, name := range []string{"learned", "learned", "oracle"} {
-		round := r.n.latestRound() + 1
+		round := r.n.Round() + 1
 		if got := guessOf0(round, name, pb.Mode_MODE_PARALLEL, nil); got != base {
 			t.Errorf("%s (cannot make): guessed %d, want the fallback's %d", name, got, base)
 		}
@@ -366,7 +385,7 @@ func TestGuessSourceFromRoundStart(t *testing.T) {
 // A fallback of learned with no classifier guesses base and says so once.
 func TestUnloadedLearnedFallback(t *testing.T) {
 	asked := make(recording, 1)
-	r := newRigWith(t, func(c *Config) { c.Compute, c.Guess = asked, signal.Learned{M: c.Model} })
+	r := newRigWith(t, func(c *Config) { c.Compute, c.Guess = asked, "learned" })
 	for round := uint64(1); round <= 2; round++ {
 		r.start(round, []uint32{0, 1}, func(rs *pb.RoundStart) { rs.Mode = pb.Mode_MODE_PARALLEL })
 		select {
@@ -386,8 +405,7 @@ func TestUnloadedLearnedFallback(t *testing.T) {
 // A decision is never served as something to do once it is old: when no
 // round has started for Stale, or a later round has, the robot holds.
 func TestOldDecisionsHold(t *testing.T) {
-	r := newRig(t)
-	r.n.cfg.Stale = 300 * time.Millisecond // set before any request reads it
+	r := newRigWith(t, func(c *Config) { c.Stale = 300 * time.Millisecond })
 	r.start(1, []uint32{1, 0}, nil)
 	v := r.n.Decision(context.Background(), 0, 5*time.Second, false)
 	if v.Hold || v.Control != harbor.East {
@@ -405,8 +423,132 @@ func TestOldDecisionsHold(t *testing.T) {
 	// A restarted coordinator (new epoch) numbers from 1 again: the robot
 	// starts over instead of dropping those rounds as stale.
 	r.start(1, []uint32{1, 0}, func(rs *pb.RoundStart) { rs.Epoch = 99 })
-	waitFor(t, func() bool { return r.n.latestRound() == 1 })
+	waitFor(t, func() bool { return r.n.Round() == 1 })
 	if v := r.n.Decision(context.Background(), 1, 5*time.Second, false); v.Hold || !v.Decided {
 		t.Fatalf("round 1 of a new epoch: %+v", v)
+	}
+}
+
+// blocking is a stub Computer that waits for the test before answering.
+type blocking struct {
+	entered chan struct{}
+	release chan struct{}
+}
+
+func (b blocking) Turn(model.State, int, []int, uint64, turn.Params) int {
+	b.entered <- struct{}{}
+	<-b.release
+	return harbor.East
+}
+
+// A flood of junk while the daemon is busy: every message is accounted
+// for, either dropped by the machine for its reason or dropped by the
+// client because the daemon fell behind (slow-consumer); none is lost
+// silently.
+func TestFloodIsCounted(t *testing.T) {
+	b := blocking{entered: make(chan struct{}), release: make(chan struct{})}
+	r := newRigWith(t, func(c *Config) { c.Compute = b })
+	r.start(1, []uint32{1, 0}, nil)
+	<-b.entered // the loop is busy computing robot 1's turn
+	const flood = DecisionPending + 3000
+	for i := range flood {
+		r.nc.Publish(r.subj.DecisionOf(i%4), []byte{0xff, byte(i)})
+	}
+	r.nc.Flush()
+	time.Sleep(200 * time.Millisecond) // let the client deliver what it can
+	close(b.release)
+	total := func() float64 {
+		var n float64
+		for _, reason := range turn.Reasons() {
+			n += testutil.ToFloat64(r.met.Dropped.WithLabelValues(string(reason)))
+		}
+		return n
+	}
+	deadline := time.Now().Add(10 * time.Second)
+	for total() < flood && time.Now().Before(deadline) {
+		time.Sleep(20 * time.Millisecond)
+	}
+	slow := testutil.ToFloat64(r.met.Dropped.WithLabelValues("slow-consumer"))
+	malformed := testutil.ToFloat64(r.met.Dropped.WithLabelValues("malformed"))
+	if total() != flood || slow == 0 || malformed == 0 {
+		t.Fatalf("sent %d, counted %g (slow-consumer %g, malformed %g)", flood, total(), slow, malformed)
+	}
+	t.Logf("%d junk decisions: %g dropped by the client (slow-consumer), %g malformed", flood, slow, malformed)
+	// And the robot is still in the fleet: it decides the next round.
+	r.start(2, []uint32{0, 1}, func(rs *pb.RoundStart) { rs.Mode = pb.Mode_MODE_PARALLEL })
+	go func() { <-b.entered }()
+	if v := r.n.Decision(context.Background(), 2, 5*time.Second, false); v.Hold {
+		t.Fatalf("%+v", v)
+	}
+}
+
+// /healthz tells a robot that holds from one that can act, and why.
+func TestHealth(t *testing.T) {
+	r := newRigWith(t, func(c *Config) { c.Stale = 300 * time.Millisecond })
+	srv := httptest.NewServer(r.n.Handler(nil))
+	defer srv.Close()
+	health := func() (int, string) {
+		resp, err := http.Get(srv.URL + "/healthz")
+		if err != nil {
+			t.Fatal(err)
+		}
+		defer resp.Body.Close()
+		b, _ := io.ReadAll(resp.Body)
+		return resp.StatusCode, string(b)
+	}
+	if code, body := health(); code != 200 || !strings.Contains(body, "waiting for the first round") {
+		t.Fatal(code, body)
+	}
+	r.start(1, []uint32{1, 0}, nil)
+	waitFor(t, func() bool { return r.n.Round() == 1 })
+	if code, body := health(); code != 200 || body != "ok robot 1 fleet yard round 1\n" {
+		t.Fatalf("%d %q", code, body)
+	}
+	// Only far-future round starts arrive: the robot holds, and says so.
+	for round := uint64(1000); round < 1002; round++ {
+		r.start(round, []uint32{1, 0}, nil)
+	}
+	time.Sleep(400 * time.Millisecond)
+	if code, body := health(); code != 503 || !strings.Contains(body, "holding") {
+		t.Fatalf("%d %q", code, body)
+	}
+	// The run keeps coming: followed again.
+	r.start(1002, []uint32{1, 0}, nil)
+	waitFor(t, func() bool { return r.n.Round() == 1002 })
+	if code, _ := health(); code != 200 {
+		t.Fatal(code)
+	}
+}
+
+// A coordinator's report request makes the daemon re-send its robot's
+// latest report, no more often than turn.HelloGap.
+func TestReportResent(t *testing.T) {
+	r := newRig(t)
+	got := make(chan *pb.Observation, 8)
+	sub, _ := r.nc.Subscribe(r.subj.ObsOf(1), func(m *nats.Msg) {
+		var o pb.Observation
+		proto.Unmarshal(m.Data, &o)
+		got <- &o
+	})
+	defer sub.Unsubscribe()
+	r.nc.Flush()
+	if err := r.n.Observe(Report{Round: 0, Position: 23}); err != nil {
+		t.Fatal(err)
+	}
+	<-got
+	for range 3 {
+		r.pub(r.subj.Hello, &pb.ReportRequest{Fleet: "yard", Epoch: 5, Sender: "coordinator"})
+	}
+	select {
+	case o := <-got:
+		if o.GetPosition() != 23 || o.GetRobot() != 1 {
+			t.Fatalf("%v", o)
+		}
+	case <-time.After(5 * time.Second):
+		t.Fatal("report not re-sent")
+	}
+	waitFor(t, func() bool { return testutil.ToFloat64(r.met.Dropped.WithLabelValues("too-frequent")) == 2 })
+	if len(got) != 0 {
+		t.Fatal("re-sent more than once within the gap")
 	}
 }

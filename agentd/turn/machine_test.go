@@ -1,366 +1,530 @@
 package turn
 
 import (
-	"reflect"
-	"strconv"
+	"fmt"
+	"slices"
 	"strings"
 	"testing"
 	"time"
 
-	pb "baton/proto"
-
-	"google.golang.org/protobuf/proto"
+	"baton/sim/harbor"
+	"baton/sim/model"
 )
 
-const fleet = "harbor-1"
+const fleet = "yard"
 
-func enc(t testing.TB, d *pb.Decision) []byte {
+// rig is robot 1 of a 4-boat harbor fleet, with a valid state to start
+// rounds on.
+type rig struct {
+	t    *testing.T
+	m    *Machine
+	mdl  *harbor.Model
+	x    model.State
+	ints []int32
+}
+
+func newRig(t *testing.T) *rig {
 	t.Helper()
-	b, err := proto.Marshal(d)
+	mdl, err := harbor.Default(4)
 	if err != nil {
 		t.Fatal(err)
 	}
-	return b
+	x := mdl.NewState()
+	mdl.Start(x, model.NewRNG(1).Rand)
+	ints, _ := mdl.Flatten(x, nil, nil)
+	return &rig{t: t, m: New(Config{Fleet: fleet, Robot: 1, Model: mdl, Digest: "d1", Sender: "r1", Stale: 10 * time.Second}),
+		mdl: mdl, x: x, ints: ints}
 }
 
-func dec(round uint64, robot uint32, control int32) *pb.Decision {
-	return &pb.Decision{Fleet: fleet, Round: round, Robot: robot, Control: control, Sender: senderName(int(robot))}
+// start is a valid round start: order 0..3, 100ms per turn.
+func (r *rig) start(epoch, round uint64, mode Mode) Start {
+	return Start{Fleet: fleet, Epoch: epoch, Round: round, Sender: "coordinator", Scenario: "harbor",
+		Ints: slices.Clone(r.ints), Order: []uint32{0, 1, 2, 3}, DeadlinesUs: []uint64{100e3, 200e3, 300e3, 400e3},
+		Mode: mode, Params: Params{Samples: 4, Horizon: 5, Seed: 9}, Digest: "d1", Guess: "base"}
 }
 
-func senderName(r int) string { return "r" + strconv.Itoa(r) }
+func (r *rig) step(ev Event) []Action {
+	r.t.Helper()
+	acts := r.m.Step(ev)
+	checkActions(r.t, acts)
+	return acts
+}
 
-// fourRobots: robot 1 of a 4-robot fleet, round 5 running with order
-// [0 1 2] (robot 3 sits out), hybrid, 5 controls each.
-func fourRobots(t testing.TB) *Machine {
+func dec(epoch, round uint64, robot uint32, control int32) Decision {
+	return Decision{Fleet: fleet, Epoch: epoch, Round: round, Robot: robot, Control: control, Sender: fmt.Sprint("r", robot)}
+}
+
+// heard delivers a decision on its own robot's subject.
+func heard(now time.Duration, d Decision) GotDecision {
+	return GotDecision{Now: now, Subject: int(d.Robot), Msg: d}
+}
+
+// checkActions holds for every Step: known action types, drops explained.
+func checkActions(t *testing.T, acts []Action) {
 	t.Helper()
-	m := New(Config{Fleet: fleet, Robot: 1, Robots: 4, Sender: "r1"})
-	acts := m.Step(Round{Now: 0, Round: 5, Order: []int{0, 1, 2},
-		Deadlines: []time.Duration{10 * time.Millisecond, 20 * time.Millisecond, 30 * time.Millisecond},
-		Mode:      Hybrid, Controls: []int{5, 5, 5, 5}})
-	if want := []Action{Arm{Round: 5, At: 10 * time.Millisecond}}; !reflect.DeepEqual(acts, want) {
-		t.Fatalf("round start: got %#v want %#v", acts, want)
+	for _, a := range acts {
+		switch a := a.(type) {
+		case Drop:
+			if !slices.Contains(Reasons(), a.Reason) {
+				t.Fatalf("unknown reason %q", a.Reason)
+			}
+			if a.Detail == "" {
+				t.Fatalf("drop without detail: %+v", a)
+			}
+		case Arm, Compute, Publish, SendReport, Began, Note:
+		default:
+			t.Fatalf("unknown action %T", a)
+		}
 	}
-	return m
+}
+
+func only[T Action](t *testing.T, acts []Action) T {
+	t.Helper()
+	var out []T
+	for _, a := range acts {
+		if v, ok := a.(T); ok {
+			out = append(out, v)
+		}
+	}
+	if len(out) != 1 {
+		var zero T
+		t.Fatalf("want one %T in %+v", zero, acts)
+	}
+	return out[0]
+}
+
+func dropOf(t *testing.T, acts []Action, want DropReason) {
+	t.Helper()
+	for _, a := range acts {
+		if d, ok := a.(Drop); ok && d.Reason == want {
+			return
+		}
+	}
+	t.Fatalf("want a %q drop, got %+v", want, acts)
+}
+
+func TestBadRoundStarts(t *testing.T) {
+	cases := []struct {
+		name   string
+		mutate func(*Start)
+		want   DropReason
+	}{
+		{"foreign", func(s *Start) { s.Fleet = "other" }, DropForeign},
+		{"round 0", func(s *Start) { s.Round = 0 }, DropMalformed},
+		{"mode", func(s *Start) { s.Mode = 9 }, DropMalformed},
+		{"absurd samples", func(s *Start) { s.Params.Samples = 1 << 31 }, DropBounds},
+		{"no samples", func(s *Start) { s.Params.Samples = 0 }, DropBounds},
+		{"negative horizon", func(s *Start) { s.Params.Horizon = -1 }, DropBounds},
+		{"horizon", func(s *Start) { s.Params.Horizon = MaxHorizon + 1 }, DropBounds},
+		{"work", func(s *Start) { s.Params.Samples, s.Params.Horizon = MaxSamples, MaxHorizon }, DropBounds},
+		{"long order", func(s *Start) {
+			s.Order = make([]uint32, MaxRobots+1)
+			s.DeadlinesUs = make([]uint64, MaxRobots+1)
+		}, DropBounds},
+		{"big state", func(s *Start) { s.Reals = make([]float64, MaxStateValues+1) }, DropBounds},
+		{"long name", func(s *Start) { s.Guess = strings.Repeat("g", MaxName+1) }, DropBounds},
+		{"empty order", func(s *Start) { s.Order, s.DeadlinesUs = nil, nil }, DropMalformed},
+		{"deadline count", func(s *Start) { s.DeadlinesUs = s.DeadlinesUs[:2] }, DropMalformed},
+		{"robot out of range", func(s *Start) { s.Order[2] = 4 }, DropRange},
+		{"robot twice", func(s *Start) { s.Order[2] = 0 }, DropMalformed},
+		{"deadline too far", func(s *Start) { s.DeadlinesUs[3] = uint64(MaxDeadline/time.Microsecond) + 1 }, DropBounds},
+		{"deadline huge", func(s *Start) { s.DeadlinesUs[3] = 1<<64 - 1 }, DropBounds},
+		{"deadlines backwards", func(s *Start) { s.DeadlinesUs[2] = 1 }, DropMalformed},
+		{"scenario", func(s *Start) { s.Scenario = "upkeep" }, DropScenario},
+		{"digest", func(s *Start) { s.Digest = "d2" }, DropScenario},
+		{"bad state", func(s *Start) { s.Ints[0] = -5 }, DropMalformed},
+		{"short state", func(s *Start) { s.Ints = s.Ints[:3] }, DropMalformed},
+	}
+	for _, c := range cases {
+		t.Run(c.name, func(t *testing.T) {
+			r := newRig(t)
+			s := r.start(7, 5, Hybrid)
+			c.mutate(&s)
+			dropOf(t, r.step(GotStart{Now: 0, Msg: s}), c.want)
+			if r.m.Round() != 0 || r.m.Counters().Drops[c.want] != 1 {
+				t.Fatalf("round %d, counters %+v", r.m.Round(), r.m.Counters())
+			}
+			// Nothing was believed: a good start is taken at once.
+			only[Began](t, r.step(GotStart{Now: 1, Msg: r.start(7, 5, Hybrid)}))
+		})
+	}
+}
+
+// The digest refusal is what the robot's software and /healthz are told.
+func TestWrongScenarioRefusalIsShown(t *testing.T) {
+	r := newRig(t)
+	s := r.start(7, 1, Hybrid)
+	s.Digest = "d2"
+	r.step(GotStart{Msg: s})
+	v := r.m.View(time.Millisecond, 0, false)
+	if !v.Hold || !v.Done || !strings.Contains(v.Reason, "same scenario file") {
+		t.Fatalf("view %+v", v)
+	}
+	if ok, why := r.m.Health(time.Millisecond); ok || !strings.Contains(why, "refusing rounds") {
+		t.Fatalf("health %v %q", ok, why)
+	}
+}
+
+// Freshness: a far-future round start is not believed, and the rounds
+// after it are played as if it never came.
+func TestFarFutureRoundIgnored(t *testing.T) {
+	r := newRig(t)
+	only[Began](t, r.step(GotStart{Now: 0, Msg: r.start(7, 5, Parallel)}))
+	dropOf(t, r.step(GotStart{Now: 1, Msg: r.start(7, 5+RoundWindow+1, Parallel)}), DropFuture)
+	dropOf(t, r.step(GotStart{Now: 2, Msg: r.start(7, 1<<62, Parallel)}), DropFuture)
+	dropOf(t, r.step(GotStart{Now: 3, Msg: r.start(7, 4, Parallel)}), DropStale)
+	dropOf(t, r.step(GotStart{Now: 3, Msg: r.start(7, 5, Parallel)}), DropDuplicate)
+	for round := uint64(6); round < 10; round++ {
+		b := only[Began](t, r.step(GotStart{Now: time.Duration(round) * time.Second, Msg: r.start(7, round, Parallel)}))
+		if b.Resync || b.NewRun {
+			t.Fatalf("round %d: %+v", round, b)
+		}
+	}
+	// Within the window is believed: that is the window.
+	only[Began](t, r.step(GotStart{Now: 20 * time.Second, Msg: r.start(7, 9+RoundWindow, Parallel)}))
+}
+
+// A bad start that did get in (here: the first one a fresh robot saw) costs
+// at most ResyncAfter rounds: the real run keeps coming and is followed.
+func TestResyncAfterBadStart(t *testing.T) {
+	r := newRig(t)
+	only[Began](t, r.step(GotStart{Now: 0, Msg: r.start(7, 1<<40, Parallel)}))
+	for round := uint64(20); round < 20+ResyncAfter-1; round++ {
+		dropOf(t, r.step(GotStart{Now: 1, Msg: r.start(7, round, Parallel)}), DropStale)
+	}
+	acts := r.step(GotStart{Now: 2, Msg: r.start(7, 20+ResyncAfter-1, Parallel)})
+	if b := only[Began](t, acts); !b.Resync || b.Round != 20+ResyncAfter-1 {
+		t.Fatalf("%+v", b)
+	}
+	only[Note](t, acts)
+	if r.m.Counters().Resyncs != 1 {
+		t.Fatal(r.m.Counters())
+	}
+	// Non-consecutive refused starts never resync.
+	r2 := newRig(t)
+	r2.step(GotStart{Msg: r2.start(7, 1<<40, Parallel)})
+	for _, round := range []uint64{3, 9, 4, 10, 5, 5} {
+		dropOf(t, r2.step(GotStart{Msg: r2.start(7, round, Parallel)}), DropStale)
+	}
+}
+
+func TestCoordinatorRuns(t *testing.T) {
+	r := newRig(t)
+	r.step(GotStart{Now: 0, Msg: r.start(7, 40, Parallel)})
+	// A restarted coordinator: larger epoch, rounds from 1.
+	acts := r.step(GotStart{Now: 1, Msg: r.start(8, 1, Parallel)})
+	if b := only[Began](t, acts); !b.NewRun || b.Round != 1 {
+		t.Fatalf("%+v", b)
+	}
+	only[Note](t, acts)
+	if v := r.m.View(2, 40, false); !v.Hold {
+		t.Fatalf("the old run's round 40 is not this run's: %+v", v)
+	}
+	// The old run is over; a newer run far from round 1 is not believed.
+	dropOf(t, r.step(GotStart{Now: 3, Msg: r.start(7, 41, Parallel)}), DropStale)
+	dropOf(t, r.step(GotStart{Now: 3, Msg: r.start(9, 1000, Parallel)}), DropFuture)
+	// A forged huge epoch that got in is left after ResyncAfter real rounds.
+	r.step(GotStart{Now: 4, Msg: r.start(1<<63, 1, Parallel)})
+	for round := uint64(2); round < 2+ResyncAfter; round++ {
+		acts = r.step(GotStart{Now: 5, Msg: r.start(8, round, Parallel)})
+	}
+	if b := only[Began](t, acts); !b.Resync || r.m.Epoch() != 8 {
+		t.Fatalf("%+v epoch %d", b, r.m.Epoch())
+	}
 }
 
 func TestBadDecisions(t *testing.T) {
+	r := newRig(t)
+	r.step(GotStart{Now: 0, Msg: r.start(7, 5, Sequential)})
+	long := dec(7, 5, 0, 1)
+	long.Heard = make([]uint32, MaxRobots+1)
 	cases := []struct {
-		name   string
-		before []*pb.Decision // accepted first
-		data   func(t testing.TB) []byte
-		reason DropReason
-		sender string
-		detail string // substring
+		name string
+		ev   GotDecision
+		want DropReason
 	}{
-		{name: "malformed bytes", data: func(testing.TB) []byte { return []byte{0xff, 0xff, 0xff} },
-			reason: DropMalformed, sender: "", detail: "does not decode"},
-		{name: "truncated field", data: func(testing.TB) []byte { return []byte{0x0a, 0x10, 'h'} },
-			reason: DropMalformed, sender: "", detail: "does not decode"},
-		{name: "other fleet", data: func(t testing.TB) []byte {
-			d := dec(5, 0, 1)
-			d.Fleet = "other"
-			return enc(t, d)
-		}, reason: DropForeign, sender: "0", detail: `fleet "other" is not "harbor-1"`},
-		{name: "empty message", data: func(testing.TB) []byte { return nil },
-			reason: DropForeign, sender: "0", detail: `fleet "" is not`},
-		{name: "replayed old round", data: func(t testing.TB) []byte { return enc(t, dec(4, 0, 1)) },
-			reason: DropStale, sender: "0", detail: "round 4 is before current round 5"},
-		{name: "future round", data: func(t testing.TB) []byte { return enc(t, dec(7, 0, 1)) },
-			reason: DropFuture, sender: "0", detail: "round 7"},
-		{name: "robot not in order", data: func(t testing.TB) []byte { return enc(t, dec(5, 3, 1)) },
-			reason: DropNotInOrder, sender: "3", detail: "robot 3 is not in the order of round 5"},
-		{name: "duplicate", before: []*pb.Decision{dec(5, 2, 1)},
-			data:   func(t testing.TB) []byte { return enc(t, dec(5, 2, 3)) },
-			reason: DropDuplicate, sender: "2", detail: "second decision from robot 2"},
-		{name: "duplicate next round", before: []*pb.Decision{dec(6, 2, 1)},
-			data:   func(t testing.TB) []byte { return enc(t, dec(6, 2, 1)) },
-			reason: DropDuplicate, sender: "2", detail: "round 6"},
-		{name: "control too high", data: func(t testing.TB) []byte { return enc(t, dec(5, 0, 5)) },
-			reason: DropMalformed, sender: "0", detail: "control 5 is outside 0..4"},
-		{name: "negative control", data: func(t testing.TB) []byte { return enc(t, dec(5, 0, -1)) },
-			reason: DropMalformed, sender: "0", detail: "control -1"},
-		{name: "robot id too high", data: func(t testing.TB) []byte { return enc(t, dec(5, 4, 1)) },
-			reason: DropMalformed, sender: "4", detail: "robot 4 is not below fleet size 4"},
-		{name: "huge robot id", data: func(t testing.TB) []byte { return enc(t, dec(5, 1<<32-1, 1)) },
-			reason: DropMalformed, sender: "4294967295", detail: "fleet size 4"},
-		{name: "foreign sender claims our id", data: func(t testing.TB) []byte {
-			d := dec(5, 1, 1)
-			d.Sender = "impostor"
-			return enc(t, d)
-		}, reason: DropDuplicate, sender: "1", detail: "another sender claims robot 1"},
+		{"foreign", heard(1, Decision{Fleet: "x", Epoch: 7, Round: 5}), DropForeign},
+		{"too many heard", heard(1, long), DropBounds},
+		{"robot out of range", heard(1, dec(7, 5, 4, 1)), DropRange},
+		{"robot huge", heard(1, dec(7, 5, 1<<32-1, 1)), DropRange},
+		{"subject", GotDecision{Now: 1, Subject: 2, Msg: dec(7, 5, 0, 1)}, DropSubject},
+		{"no subject", GotDecision{Now: 1, Subject: -1, Msg: dec(7, 5, 0, 1)}, DropSubject},
+		{"control", heard(1, dec(7, 5, 0, 5)), DropRange},
+		{"negative control", heard(1, dec(7, 5, 0, -99)), DropRange},
+		{"stale", heard(1, dec(7, 4, 0, 1)), DropStale},
+		{"old run", heard(1, dec(6, 5, 0, 1)), DropStale},
+		{"future", heard(1, dec(7, 7, 0, 1)), DropFuture},
+		{"round 0", heard(1, dec(7, 0, 0, 1)), DropMalformed},
+		{"other claims me", heard(1, Decision{Fleet: fleet, Epoch: 7, Round: 5, Robot: 1, Sender: "impostor"}), DropDuplicate},
 	}
-	for _, tc := range cases {
-		t.Run(tc.name, func(t *testing.T) {
-			m := fourRobots(t)
-			for _, d := range tc.before {
-				if acts := m.Step(Heard{Data: enc(t, d)}); len(acts) != 0 {
-					t.Fatalf("setup message caused %#v", acts)
-				}
-			}
-			acts := m.Step(Heard{Now: time.Millisecond, Data: tc.data(t)})
-			if len(acts) != 1 {
-				t.Fatalf("got %d actions %#v, want one Drop", len(acts), acts)
-			}
-			d, ok := acts[0].(Drop)
-			if !ok {
-				t.Fatalf("got %#v, want Drop", acts[0])
-			}
-			if d.Reason != tc.reason || d.Sender != tc.sender || !strings.Contains(d.Detail, tc.detail) {
-				t.Errorf("got %+v, want reason %s sender %q detail ~%q", d, tc.reason, tc.sender, tc.detail)
-			}
-			c := m.Counters()
-			if c.Drops[tc.reason] != 1 || c.Dropped() != 1 || c.Late != 0 {
-				t.Errorf("counters %+v", c)
-			}
-			// The round goes on as if the message never came: the timer
-			// still computes with robot 0 guessed.
-			acts = m.Step(Timer{Now: 10 * time.Millisecond, Round: 5})
-			want := []Action{Compute{Round: 5, Known: []int{-1, -1, -1, -1}, Guess: []int{0}}}
-			if !reflect.DeepEqual(acts, want) {
-				t.Errorf("after drop, timer gave %#v want %#v", acts, want)
-			}
-		})
+	for _, c := range cases {
+		dropOf(t, r.step(c.ev), c.want)
 	}
-}
-
-func TestOwnEchoIgnored(t *testing.T) {
-	m := fourRobots(t)
-	d := dec(5, 1, 2)
-	d.Sender = "r1"
-	if acts := m.Step(Heard{Data: enc(t, d)}); len(acts) != 0 {
-		t.Fatalf("echo caused %#v", acts)
+	// Own echo: silently ignored.
+	if acts := r.step(heard(1, Decision{Fleet: fleet, Epoch: 7, Round: 5, Robot: 1, Sender: "r1"})); len(acts) != 0 {
+		t.Fatal(acts)
 	}
-	if c := m.Counters(); c.Dropped() != 0 {
-		t.Fatalf("echo counted: %+v", c)
+	// None of it counted as robot 0's decision: still waiting.
+	if acts := r.step(heard(2, dec(7, 5, 0, 3))); only[Compute](t, acts).Known[0] != 3 {
+		t.Fatal(acts)
 	}
-}
-
-func TestBadRounds(t *testing.T) {
-	ms := time.Millisecond
-	good := Round{Now: 0, Round: 6, Order: []int{0, 1}, Deadlines: []time.Duration{ms, 2 * ms}, Mode: Sequential, Controls: []int{5, 5, 5, 5}}
-	cases := []struct {
-		name   string
-		mut    func(r *Round)
-		reason DropReason
-		detail string
-	}{
-		{"stale", func(r *Round) { r.Round = 4 }, DropStale, "round 4 is before current round 5"},
-		{"same round", func(r *Round) { r.Round = 5 }, DropDuplicate, "round 5 already started"},
-		{"round zero", func(r *Round) { r.Round = 0 }, DropMalformed, "round 0"},
-		{"deadline count", func(r *Round) { r.Deadlines = r.Deadlines[:1] }, DropMalformed, "1 deadlines for 2 turns"},
-		{"nil deadlines", func(r *Round) { r.Deadlines = nil }, DropMalformed, "0 deadlines"},
-		{"duplicate id", func(r *Round) { r.Order = []int{1, 1} }, DropMalformed, "robot 1 appears twice"},
-		{"id too high", func(r *Round) { r.Order = []int{0, 4} }, DropMalformed, "order[1] = robot 4"},
-		{"negative id", func(r *Round) { r.Order = []int{-1, 0} }, DropMalformed, "order[0] = robot -1"},
-		{"controls length", func(r *Round) { r.Controls = []int{5} }, DropMalformed, "1 control counts for 4 robots"},
-		{"negative controls", func(r *Round) { r.Controls = []int{5, -1, 5, 5} }, DropMalformed, "controls[1] = -1"},
-		{"decreasing deadlines", func(r *Round) { r.Deadlines = []time.Duration{2 * ms, ms} }, DropMalformed, "deadline 1 (1ms) is before deadline 0"},
-		{"negative deadline", func(r *Round) { r.Deadlines = []time.Duration{-ms, ms} }, DropMalformed, "deadline 0 is negative"},
-		{"bad mode", func(r *Round) { r.Mode = 0 }, DropMalformed, "mode 0"},
-	}
-	for _, tc := range cases {
-		t.Run(tc.name, func(t *testing.T) {
-			m := fourRobots(t)
-			r := good
-			tc.mut(&r)
-			acts := m.Step(r)
-			if len(acts) != 1 {
-				t.Fatalf("got %#v", acts)
-			}
-			d, ok := acts[0].(Drop)
-			if !ok || d.Reason != tc.reason || !strings.Contains(d.Detail, tc.detail) {
-				t.Fatalf("got %#v, want %s ~%q", acts[0], tc.reason, tc.detail)
-			}
-			if m.Round() != 5 {
-				t.Fatalf("round changed to %d", m.Round())
-			}
-			if c := m.Counters(); c.Drops[tc.reason] != 1 {
-				t.Errorf("counters %+v", c)
-			}
-			// The old round is still live.
-			acts = m.Step(Heard{Data: enc(t, dec(5, 0, 3))})
-			want := []Action{Compute{Round: 5, Known: []int{3, -1, -1, -1}}}
-			if !reflect.DeepEqual(acts, want) {
-				t.Errorf("old round not live: %#v", acts)
-			}
-		})
-	}
+	dropOf(t, r.step(heard(3, dec(7, 5, 0, 2))), DropDuplicate)
+	r2 := newRig(t)
+	s := r2.start(7, 5, Hybrid)
+	s.Order, s.DeadlinesUs = []uint32{1, 2}, []uint64{1e5, 2e5}
+	r2.step(GotStart{Msg: s})
+	dropOf(t, r2.step(heard(1, dec(7, 5, 3, 1))), DropNotInOrder)
 }
 
 func TestHybridTurn(t *testing.T) {
-	ms := time.Millisecond
-	m := New(Config{Fleet: fleet, Robot: 3, Robots: 4, Sender: "r3"})
-	acts := m.Step(Round{Now: 100 * ms, Round: 1, Order: []int{2, 0, 3, 1},
-		Deadlines: []time.Duration{5 * ms, 10 * ms, 15 * ms, 20 * ms}, Mode: Hybrid, Controls: []int{5, 5, 5, 5}})
-	if want := []Action{Arm{Round: 1, At: 110 * ms}}; !reflect.DeepEqual(acts, want) {
-		t.Fatalf("got %#v", acts)
+	r := newRig(t)
+	acts := r.step(GotStart{Now: time.Second, Msg: r.start(7, 5, Hybrid)})
+	arm := only[Arm](t, acts)
+	if arm.At != time.Second+100*time.Millisecond || arm.Round != 5 || arm.Epoch != 7 {
+		t.Fatalf("%+v", arm)
 	}
-	// Successor's decision: recorded, nothing to do.
-	if acts := m.Step(Heard{Data: enc(t, dec(1, 1, 4))}); len(acts) != 0 {
-		t.Fatalf("successor: %#v", acts)
+	// A stale timer does nothing; the right one computes with a guess.
+	if len(r.step(Timer{Now: arm.At, Epoch: 6, Round: 5})) != 0 {
+		t.Fatal("old run's timer acted")
 	}
-	if acts := m.Step(Heard{Data: enc(t, dec(1, 2, 2))}); len(acts) != 0 {
-		t.Fatalf("first predecessor: %#v", acts)
+	c := only[Compute](t, r.step(Timer{Now: arm.At, Epoch: 7, Round: 5}))
+	if !slices.Equal(c.Guess, []int{0}) || c.Known[0] != -1 || c.Due != time.Second+200*time.Millisecond || c.State == nil {
+		t.Fatalf("%+v", c)
 	}
-	// A timer for another round is ignored.
-	if acts := m.Step(Timer{Round: 2}); len(acts) != 0 {
-		t.Fatalf("wrong timer: %#v", acts)
+	// Robot 0 arrives late: counted, not used.
+	r.step(heard(arm.At+1, dec(7, 5, 0, 2)))
+	if r.m.Late() != 1 {
+		t.Fatal("late not counted")
 	}
-	acts = m.Step(Timer{Now: 110 * ms, Round: 1})
-	want := []Action{Compute{Round: 1, Known: []int{-1, -1, 2, -1}, Guess: []int{0}}}
-	if !reflect.DeepEqual(acts, want) {
-		t.Fatalf("timer: got %#v want %#v", acts, want)
+	p := only[Publish](t, r.step(Computed{Now: arm.At + 5, Epoch: 7, Round: 5, Control: 3, Took: 5 * time.Microsecond}))
+	if p.Decision.Control != 3 || !slices.Equal(p.Decision.Guessed, []uint32{0}) || len(p.Decision.Heard) != 0 || p.Decision.Epoch != 7 {
+		t.Fatalf("%+v", p)
 	}
-	// Robot 0 arrives after the Compute: late, not a drop, not used.
-	if acts := m.Step(Heard{Data: enc(t, dec(1, 0, 1))}); len(acts) != 0 {
-		t.Fatalf("late: %#v", acts)
+	v := r.m.View(arm.At+6, 5, false)
+	if !v.Done || v.Hold || v.Control != 3 || v.Action != "E" || !v.Decided {
+		t.Fatalf("%+v", v)
 	}
-	if c := m.Counters(); c.Late != 1 || c.Dropped() != 0 {
-		t.Fatalf("counters %+v", c)
-	}
-	// The timer again, and a Computed for another round: ignored.
-	if acts := m.Step(Timer{Round: 1}); len(acts) != 0 {
-		t.Fatalf("second timer: %#v", acts)
-	}
-	if acts := m.Step(Computed{Round: 2, Control: 1}); len(acts) != 0 {
-		t.Fatalf("wrong computed: %#v", acts)
-	}
-	// A control the driver got wrong is not published.
-	acts = m.Step(Computed{Round: 1, Control: -1})
-	if d, ok := acts[0].(Drop); len(acts) != 1 || !ok || d.Reason != DropMalformed || d.Sender != "3" {
-		t.Fatalf("bad computed: %#v", acts)
-	}
-	acts = m.Step(Computed{Now: 113 * ms, Round: 1, Control: 4, Took: 2500 * time.Microsecond})
-	wantD := &pb.Decision{Fleet: fleet, Round: 1, Robot: 3, Control: 4, Heard: []uint32{2}, Guessed: []uint32{0}, ComputeUs: 2500, Sender: "r3"}
-	if len(acts) != 1 {
-		t.Fatalf("publish: %#v", acts)
-	}
-	if p, ok := acts[0].(Publish); !ok || !proto.Equal(p.Decision, wantD) {
-		t.Fatalf("publish: got %v want %v", acts[0], wantD)
-	}
-	// Done: nothing more for this round.
-	if acts := m.Step(Computed{Round: 1, Control: 4}); len(acts) != 0 {
-		t.Fatalf("second computed: %#v", acts)
+	// An out-of-range control from the rollout is never published.
+	r.step(GotStart{Now: 2 * time.Second, Msg: r.start(7, 6, Parallel)})
+	acts = r.step(Computed{Now: 2 * time.Second, Epoch: 7, Round: 6, Control: 9})
+	if len(acts) != 1 || !only[Note](t, acts).Warn {
+		t.Fatal(acts)
 	}
 }
 
-func TestSequentialWaitsAndNewRoundAbandons(t *testing.T) {
-	m := New(Config{Fleet: fleet, Robot: 2, Robots: 3, Sender: "r2"})
-	r := Round{Round: 1, Order: []int{0, 1, 2}, Deadlines: make([]time.Duration, 3), Mode: Sequential, Controls: []int{3, 3, 3}}
-	if acts := m.Step(r); len(acts) != 0 {
-		t.Fatalf("sequential start armed or computed: %#v", acts)
+func TestSequentialWaitsUntilClose(t *testing.T) {
+	r := newRig(t)
+	acts := r.step(GotStart{Now: 0, Msg: r.start(7, 5, Sequential)})
+	if len(acts) != 1 {
+		t.Fatalf("sequential arms nothing, computes nothing: %+v", acts)
 	}
-	if acts := m.Step(Heard{Data: enc(t, dec(1, 0, 1))}); len(acts) != 0 {
-		t.Fatalf("%#v", acts)
+	if v := r.m.View(time.Second, 5, false); v.Done || !strings.Contains(v.Reason, "no decision") {
+		t.Fatalf("%+v", v)
 	}
-	if acts := m.Step(Timer{Round: 1}); len(acts) != 0 {
-		t.Fatalf("sequential has no timer: %#v", acts)
+	// The coordinator gave up on robot 0: everyone after it held.
+	cl := Close{Fleet: fleet, Epoch: 7, Round: 5, Controls: make([]int32, 4), Held: []uint32{0, 1, 2, 3}, LatencyUs: 400000, Stalled: 1}
+	if acts := r.step(GotClose{Now: time.Second, Msg: cl}); len(acts) != 0 {
+		t.Fatal(acts)
 	}
-	// Round 2 abandons round 1; robot 1's round-1 decision is now stale.
-	r.Round, r.Order = 2, []int{2, 0, 1}
-	acts := m.Step(r)
-	if want := []Action{Compute{Round: 2, Known: []int{-1, -1, -1}}}; !reflect.DeepEqual(acts, want) {
-		t.Fatalf("round 2: %#v", acts)
+	v := r.m.View(time.Second, 5, true)
+	if !v.Done || !v.Hold || v.LatencyUs != 400000 || v.Stalled != 0 || !strings.Contains(v.Reason, "waited for robot 0") {
+		t.Fatalf("%+v", v)
 	}
-	acts = m.Step(Heard{Data: enc(t, dec(1, 1, 1))})
-	if d, ok := acts[0].(Drop); !ok || d.Reason != DropStale {
-		t.Fatalf("old decision: %#v", acts)
-	}
-	if acts := m.Step(Computed{Round: 1, Control: 1}); len(acts) != 0 {
-		t.Fatalf("old computed: %#v", acts)
-	}
-	if p, ok := m.Step(Computed{Round: 2, Control: 2})[0].(Publish); !ok || p.Decision.Round != 2 || len(p.Decision.Heard)+len(p.Decision.Guessed) != 0 {
-		t.Fatalf("round 2 publish: %v", p)
+	// Robot 0's decision after the close starts nothing.
+	if acts := r.step(heard(2*time.Second, dec(7, 5, 0, 1))); len(acts) != 0 {
+		t.Fatal(acts)
 	}
 }
 
 func TestParallelGuessesEveryone(t *testing.T) {
-	m := New(Config{Fleet: fleet, Robot: 2, Robots: 3, Sender: "r2"})
-	// Robot 0's round-1 decision arrives early; parallel still guesses it.
-	if acts := m.Step(Heard{Data: enc(t, dec(1, 0, 1))}); len(acts) != 0 {
-		t.Fatalf("%#v", acts)
-	}
-	acts := m.Step(Round{Round: 1, Order: []int{0, 1, 2}, Deadlines: make([]time.Duration, 3), Mode: Parallel, Controls: []int{3, 3, 3}})
-	if want := []Action{Compute{Round: 1, Known: []int{-1, -1, -1}, Guess: []int{0, 1}}}; !reflect.DeepEqual(acts, want) {
-		t.Fatalf("%#v", acts)
-	}
-	m.Step(Heard{Data: enc(t, dec(1, 1, 1))})
-	if c := m.Counters(); c.Late != 0 { // parallel: nobody waits, nothing is late
-		t.Fatalf("late %+v", c)
-	}
-	p := m.Step(Computed{Round: 1, Control: 0})[0].(Publish)
-	if !reflect.DeepEqual(p.Decision.Guessed, []uint32{0, 1}) || len(p.Decision.Heard) != 0 {
-		t.Fatalf("%v", p.Decision)
-	}
-}
-
-func TestEarlyDecisionsBuffered(t *testing.T) {
-	m := New(Config{Fleet: fleet, Robot: 2, Robots: 4, Sender: "r2"})
-	for _, d := range []*pb.Decision{dec(1, 0, 4), dec(1, 1, 2), dec(1, 3, 9), dec(1, 3, 1)} {
-		m.Step(Heard{Data: enc(t, d)})
-	}
-	// The second robot-3 decision was a duplicate; round 2 is too far ahead.
-	if c := m.Counters(); c.Drops[DropDuplicate] != 1 {
+	r := newRig(t)
+	r.step(heard(0, dec(7, 5, 0, 1))) // early: kept, but parallel never waits
+	acts := r.step(GotStart{Now: 0, Msg: r.start(7, 5, Parallel)})
+	c := only[Compute](t, acts)
+	if !slices.Equal(c.Guess, []int{0}) || c.Known[0] != -1 {
 		t.Fatalf("%+v", c)
 	}
-	if a := m.Step(Heard{Data: enc(t, dec(2, 0, 1))}); a[0].(Drop).Reason != DropFuture {
-		t.Fatalf("%#v", a)
+}
+
+func TestEarlyDecisions(t *testing.T) {
+	r := newRig(t)
+	r.step(GotStart{Now: 0, Msg: r.start(7, 5, Sequential)})
+	r.step(heard(1, dec(7, 6, 0, 2)))
+	dropOf(t, r.step(heard(1, dec(7, 6, 0, 2))), DropDuplicate)
+	c := only[Compute](t, r.step(GotStart{Now: 2, Msg: r.start(7, 6, Sequential)}))
+	if c.Known[0] != 2 {
+		t.Fatalf("%+v", c)
 	}
-	// Round 1: robot 3 sits out (not-in-order), robot 3's control 9 would
-	// be malformed anyway; both predecessors are known so no waiting.
-	acts := m.Step(Round{Round: 1, Order: []int{1, 0, 2}, Deadlines: make([]time.Duration, 3), Mode: Hybrid, Controls: []int{5, 5, 5, 5}})
-	if len(acts) != 2 {
-		t.Fatalf("%#v", acts)
-	}
-	if d := acts[0].(Drop); d.Reason != DropNotInOrder || d.Sender != "3" {
-		t.Fatalf("%#v", acts[0])
-	}
-	if want := (Compute{Round: 1, Known: []int{4, 2, -1, -1}}); !reflect.DeepEqual(acts[1], want) {
-		t.Fatalf("got %#v want %#v", acts[1], want)
-	}
-	// Buffered decisions are validated against the round: out of range.
-	m2 := New(Config{Fleet: fleet, Robot: 2, Robots: 4, Sender: "r2"})
-	m2.Step(Heard{Data: enc(t, dec(1, 0, 4))})
-	acts = m2.Step(Round{Round: 1, Order: []int{0, 2}, Deadlines: make([]time.Duration, 2), Mode: Sequential, Controls: []int{3, 5, 5, 5}})
-	if len(acts) != 1 || acts[0].(Drop).Reason != DropMalformed {
-		t.Fatalf("%#v", acts)
-	}
-	// A buffer for a round that never started is stale when a later one does.
-	m3 := New(Config{Fleet: fleet, Robot: 2, Robots: 4, Sender: "r2"})
-	m3.Step(Heard{Data: enc(t, dec(1, 0, 4))})
-	acts = m3.Step(Round{Round: 3, Order: []int{2}, Deadlines: make([]time.Duration, 1), Mode: Sequential, Controls: []int{5, 5, 5, 5}})
-	if len(acts) != 2 || acts[0].(Drop).Reason != DropStale {
-		t.Fatalf("%#v", acts)
+	// Kept for a round that never came: dropped as stale when another starts.
+	r.step(heard(3, dec(7, 7, 0, 9)))
+	dropOf(t, r.step(GotStart{Now: 4, Msg: r.start(7, 8, Sequential)}), DropStale)
+	// Checked when its round starts: an impossible control is dropped then.
+	r.step(heard(5, dec(7, 9, 0, 9)))
+	dropOf(t, r.step(GotStart{Now: 6, Msg: r.start(7, 9, Sequential)}), DropRange)
+	// Round 1 of a newer run is kept too.
+	r.step(heard(7, dec(8, 1, 0, 4)))
+	if c := only[Compute](t, r.step(GotStart{Now: 8, Msg: r.start(8, 1, Sequential)})); c.Known[0] != 4 {
+		t.Fatalf("%+v", c)
 	}
 }
 
-func TestSitOut(t *testing.T) {
-	m := New(Config{Fleet: fleet, Robot: 3, Robots: 4, Sender: "r3"})
-	if acts := m.Step(Round{Round: 1, Order: []int{0, 1}, Deadlines: make([]time.Duration, 2), Mode: Hybrid, Controls: []int{5, 5, 5, 5}}); len(acts) != 0 {
-		t.Fatalf("%#v", acts)
-	}
-	for _, ev := range []Event{Heard{Data: enc(t, dec(1, 0, 1))}, Timer{Round: 1}, Computed{Round: 1}} {
-		if acts := m.Step(ev); len(acts) != 0 {
-			t.Fatalf("%T: %#v", ev, acts)
+func TestBadCloses(t *testing.T) {
+	r := newRig(t)
+	cl := func(round uint64, mutate func(*Close)) GotClose {
+		c := Close{Fleet: fleet, Epoch: 7, Round: round, Controls: []int32{1, 2, 3, 4}, Held: []uint32{}, LatencyUs: 100}
+		if mutate != nil {
+			mutate(&c)
 		}
+		return GotClose{Now: 1, Msg: c}
+	}
+	dropOf(t, r.step(cl(5, nil)), DropFuture) // nothing started
+	r.step(GotStart{Now: 0, Msg: r.start(7, 5, Parallel)})
+	cases := []struct {
+		name string
+		ev   GotClose
+		want DropReason
+	}{
+		{"foreign", cl(5, func(c *Close) { c.Fleet = "x" }), DropForeign},
+		{"future", cl(6, nil), DropFuture},
+		{"far future", cl(1<<60, nil), DropFuture},
+		{"newer run", cl(5, func(c *Close) { c.Epoch = 8 }), DropFuture},
+		{"older run", cl(5, func(c *Close) { c.Epoch = 6 }), DropStale},
+		{"over", cl(4, nil), DropStale},
+		{"count", cl(5, func(c *Close) { c.Controls = c.Controls[:3] }), DropMalformed},
+		{"no such control", cl(5, func(c *Close) { c.Controls[1] = -99 }), DropRange},
+		{"control too big", cl(5, func(c *Close) { c.Controls[2] = 5 }), DropRange},
+		{"held range", cl(5, func(c *Close) { c.Held = []uint32{4} }), DropRange},
+		{"held twice", cl(5, func(c *Close) { c.Held = []uint32{2, 2} }), DropMalformed},
+		{"latency", cl(5, func(c *Close) { c.LatencyUs = 1 << 62 }), DropBounds},
+		{"stalled", cl(5, func(c *Close) { c.Stalled = 9 }), DropRange},
+		{"long", cl(5, func(c *Close) { c.Controls = make([]int32, MaxRobots+1) }), DropBounds},
+	}
+	for _, c := range cases {
+		dropOf(t, r.step(c.ev), c.want)
+		if v := r.m.View(2, 5, true); v.Closed {
+			t.Fatalf("%s: closed by a bad close: %+v", c.name, v)
+		}
+	}
+	if acts := r.step(cl(5, nil)); len(acts) != 0 {
+		t.Fatal(acts)
+	}
+	dropOf(t, r.step(cl(5, nil)), DropDuplicate)
+	if v := r.m.View(2, 5, true); !v.Closed || v.Control != 2 || v.Action != "S" || v.Hold {
+		t.Fatalf("%+v", v)
+	}
+	// A spray of future closes keeps nothing.
+	for i := range uint64(10000) {
+		r.step(cl(6+i, nil))
+	}
+	if len(r.m.hist) != 1 {
+		t.Fatalf("history grew to %d", len(r.m.hist))
 	}
 }
 
-func TestOddEvents(t *testing.T) {
-	m := New(Config{Fleet: fleet, Robot: 0, Robots: 2})
-	for _, ev := range []Event{nil, (*Round)(nil), (*Heard)(nil), (*Timer)(nil), (*Computed)(nil), Timer{}, Computed{}} {
-		if acts := m.Step(ev); len(acts) != 0 {
-			t.Fatalf("%#v: %#v", ev, acts)
+// The previous round's close feeds the last source; held robots are -1.
+func TestLastControls(t *testing.T) {
+	r := newRig(t)
+	r.step(GotStart{Now: 0, Msg: r.start(7, 5, Parallel)})
+	r.step(GotClose{Now: 1, Msg: Close{Fleet: fleet, Epoch: 7, Round: 5, Controls: []int32{1, 2, 0, 4}, Held: []uint32{2}}})
+	c := only[Compute](t, r.step(GotStart{Now: 2, Msg: r.start(7, 6, Parallel)}))
+	if !slices.Equal(c.Last, []int{1, 2, -1, 4}) {
+		t.Fatalf("%v", c.Last)
+	}
+	// Without round 6's close, round 7 has no last controls.
+	if c := only[Compute](t, r.step(GotStart{Now: 3, Msg: r.start(7, 7, Parallel)})); c.Last != nil {
+		t.Fatalf("%v", c.Last)
+	}
+}
+
+func TestHistoryBounded(t *testing.T) {
+	r := newRig(t)
+	for round := uint64(1); round < 3*History; round++ {
+		r.step(GotStart{Now: time.Duration(round), Msg: r.start(7, round, Parallel)})
+	}
+	if len(r.m.hist) != History {
+		t.Fatalf("%d rounds kept", len(r.m.hist))
+	}
+}
+
+func TestReportsAndHello(t *testing.T) {
+	r := newRig(t)
+	hello := func(now time.Duration, epoch uint64) []Action {
+		return r.step(GotHello{Now: now, Msg: Hello{Fleet: fleet, Epoch: epoch, Sender: "coordinator"}})
+	}
+	if acts := hello(0, 7); len(acts) != 0 {
+		t.Fatal("nothing reported yet, nothing to re-send:", acts)
+	}
+	// Before any round, any round number is believed (the robot's software
+	// may be mid-run when agentd restarts).
+	if _, err := r.m.Observe(0, 12, 3, 0, nil); err != nil {
+		t.Fatal(err)
+	}
+	r.step(GotStart{Now: 0, Msg: r.start(7, 5, Parallel)})
+	for _, bad := range []struct {
+		round   uint64
+		pos     int32
+		applied int
+		seen    []model.Sighting
+		want    string
+	}{
+		{7, 3, 0, nil, "current round is 5"},
+		{3, 3, 0, nil, "current round is 5"},
+		{5, 3, 5, nil, "applied control 5"},
+		{5, -1, 0, nil, "not a cell"},
+		{5, 3, 0, []model.Sighting{{What: 99, Value: 1}}, "does not exist"},
+		{5, 3, 0, make([]model.Sighting, MaxSightings+1), "sightings"},
+	} {
+		if _, err := r.m.Observe(1, bad.round, bad.pos, bad.applied, bad.seen); err == nil || !strings.Contains(err.Error(), bad.want) {
+			t.Errorf("report %+v: %v", bad, err)
 		}
 	}
-	acts := m.Step(&Round{Round: 1, Order: []int{0}, Deadlines: []time.Duration{0}, Mode: Sequential, Controls: []int{1, 1}})
-	if len(acts) != 1 {
-		t.Fatalf("pointer round: %#v", acts)
+	s, err := r.m.Observe(1, 5, 3, 2, nil)
+	if err != nil || s.Report.Epoch != 7 || s.Report.Round != 5 || s.Report.Robot != 1 || s.Resent {
+		t.Fatalf("%+v %v", s, err)
 	}
-	// A machine with a nonsense config refuses rounds instead of panicking.
-	for _, cfg := range []Config{{Robots: -1}, {Robots: 0}, {Robot: -5, Robots: 2}, {Robot: 7, Robots: 2}} {
-		m := New(cfg)
-		m.Step(Round{Round: 1, Order: []int{0}, Deadlines: []time.Duration{0}, Mode: Parallel, Controls: []int{1, 1}})
-		m.Step(Heard{Data: enc(t, &pb.Decision{Round: 1, Robot: 1})})
+	dropOf(t, r.step(GotHello{Now: 2, Msg: Hello{Fleet: "x"}}), DropForeign)
+	dropOf(t, hello(2, 6), DropStale)
+	rs := only[SendReport](t, hello(2, 8))
+	if !rs.Resent || rs.Report.Round != 5 || rs.Report.Position != 3 {
+		t.Fatalf("%+v", rs)
+	}
+	dropOf(t, hello(2+HelloGap/2, 8), DropTooFrequent)
+	only[SendReport](t, hello(2+HelloGap, 8))
+}
+
+func TestViews(t *testing.T) {
+	r := newRig(t)
+	if v := r.m.View(0, 0, false); v.Done || !v.Hold {
+		t.Fatalf("%+v", v)
+	}
+	if ok, why := r.m.Health(0); !ok || why != "waiting for the first round" {
+		t.Fatal(why)
+	}
+	s := r.start(7, 5, Parallel)
+	s.Order, s.DeadlinesUs = []uint32{0, 2}, []uint64{1e5, 2e5}
+	r.step(GotStart{Now: time.Second, Msg: s}) // robot 1 sits out
+	if v := r.m.View(time.Second, 5, false); !v.Done || !v.Hold || v.Reason != "not in this round's order" {
+		t.Fatalf("%+v", v)
+	}
+	if v := r.m.View(time.Second, 5, true); v.Done {
+		t.Fatalf("asked for the close: wait for it %+v", v)
+	}
+	if v := r.m.View(time.Second, 6, false); v.Done || !strings.Contains(v.Reason, "has not started") {
+		t.Fatalf("%+v", v)
+	}
+	r.step(GotStart{Now: 2 * time.Second, Msg: r.start(7, 6, Parallel)})
+	r.step(Computed{Now: 2 * time.Second, Epoch: 7, Round: 6, Control: 4})
+	if v := r.m.View(2*time.Second, 5, false); !v.Hold || !strings.Contains(v.Reason, "is over") {
+		t.Fatalf("old rounds are never served: %+v", v)
+	}
+	if v := r.m.View(2*time.Second, 0, false); v.Hold || v.Control != 4 || v.Round != 6 {
+		t.Fatalf("%+v", v)
+	}
+	late := 2*time.Second + 11*time.Second
+	if v := r.m.View(late, 0, false); !v.Hold || !strings.Contains(v.Reason, "coordinator gone") {
+		t.Fatalf("a stale decision is not served: %+v", v)
+	}
+	if ok, why := r.m.Health(late); ok || !strings.Contains(why, "holding") {
+		t.Fatal(why)
 	}
 }

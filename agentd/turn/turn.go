@@ -1,18 +1,26 @@
-// Package turn is one robot's side of the round protocol as a pure state
-// machine: events in, actions out. It does no I/O and has no clock: time
-// arrives inside events (Now, a monotonic offset the driver chooses) and
-// waiting is expressed by asking the driver to arm a timer. agentd drives it
-// from NATS and real time; tests and the simulator drive it from an
-// in-memory network with virtual time.
+// Package turn is the round protocol's robot side as a pure state machine,
+// and the protocol's vocabulary (messages, bounds, drop reasons) that the
+// coordinator's machine (coordinator/clock) shares.
+//
+// The machine owns everything a robot knows about rounds: which coordinator
+// run it follows, the current round and its state, what it heard, its own
+// decision, the closes, and the last rounds for the robot's local interface.
+// It does no I/O and has no clock: time arrives inside events (Now, a
+// monotonic offset the driver chooses) and waiting is expressed by asking
+// the driver to arm a timer. agentd drives it from NATS and real time; the
+// virtual-time fleet (sim/vfleet) drives whole fleets of them in one
+// process. proto/PROTOCOL.md describes states, events, actions and
+// admission rules.
 package turn
 
 import (
+	"fmt"
 	"time"
 
-	pb "baton/proto"
+	"baton/sim/model"
 )
 
-// Mode of a round (mirrors pb.Mode).
+// Mode of a round; the values are the wire's.
 type Mode int
 
 const (
@@ -43,101 +51,148 @@ func ParseMode(s string) (Mode, bool) {
 	return 0, false
 }
 
-// Event is one input to the machine.
-type Event interface{ isEvent() }
-
-// Round: a RoundStart arrived (already decoded and checked against the
-// fleet by the driver, which owns the scenario).
-type Round struct {
-	Now       time.Duration
-	Round     uint64
-	Order     []int           // robot ids in turn order
-	Deadlines []time.Duration // Deadlines[k]: offset from Now by which turn k is due
-	Mode      Mode
-	Controls  []int // number of valid controls per robot id in this round's state
-}
-
-// Heard: a Decision message arrived from the network, raw (the machine
-// decodes it so malformed bytes are counted in one place).
-type Heard struct {
-	Now  time.Duration
-	Data []byte
-}
-
-// Timer: a timer the machine armed has fired.
-type Timer struct {
-	Now   time.Duration
-	Round uint64
-}
-
-// Computed: the driver finished the Compute the machine asked for.
-type Computed struct {
-	Now     time.Duration
-	Round   uint64
-	Control int
-	Took    time.Duration
-}
-
-func (Round) isEvent()    {}
-func (Heard) isEvent()    {}
-func (Timer) isEvent()    {}
-func (Computed) isEvent() {}
-
-// Action is one output of the machine.
-type Action interface{ isAction() }
-
-// Arm asks the driver to deliver Timer{Round} at time At (same clock as Now).
-type Arm struct {
-	Round uint64
-	At    time.Duration
-}
-
-// Compute asks the driver to run this robot's rollout turn. Known[j] is the
-// control of robot j when it is a predecessor that was heard; Guess lists
-// the predecessors the guess source must fill in; every other robot (the
-// successors, and robots not in the order) is at its base control, which is
-// what decide.Decider.Turn does for entries of -1. Known has one entry per
-// robot id, -1 where not heard.
-type Compute struct {
-	Round uint64
-	Known []int
-	Guess []int
-}
-
-// Publish asks the driver to send this robot's decision.
-type Publish struct {
-	Decision *pb.Decision
-}
-
-// Drop reports a message that was not acted on, with why. The driver counts
-// every drop and logs the first of each (reason, sender).
-type Drop struct {
-	Reason DropReason
-	Sender string // robot id or sender name when known, else ""
-	Detail string
-}
-
-func (Arm) isAction()     {}
-func (Compute) isAction() {}
-func (Publish) isAction() {}
-func (Drop) isAction()    {}
-
-// DropReason classifies dropped messages.
-type DropReason string
-
-const (
-	DropMalformed  DropReason = "malformed"    // bytes that do not decode, or out-of-range fields
-	DropForeign    DropReason = "foreign"      // another fleet's message
-	DropStale      DropReason = "stale"        // a round that is already over for this robot
-	DropFuture     DropReason = "future"       // a round more than one ahead of the current one
-	DropDuplicate  DropReason = "duplicate"    // a second decision from the same robot for a round
-	DropNotInOrder DropReason = "not-in-order" // a sender that is not in this round's order
-)
-
 // Config is fixed for a machine's life.
 type Config struct {
 	Fleet  string
 	Robot  int
-	Robots int    // fleet size: robot ids are 0..Robots-1
-	Sender string // this robot's sender name for published decisions
+	Model  model.Fleet // the scenario: fleet size, controls, snapshot checks
+	Digest string      // scenario digest; round starts naming another are refused ("" : not checked)
+	Sender string      // this robot's sender name for its decisions and reports
+	// Stale: with no round start admitted for this long the robot holds
+	// (default 10s).
+	Stale time.Duration
+}
+
+// Event is one input to the machine.
+type Event interface{ isEvent() }
+
+// GotStart: a round start arrived (decoded by the shell, not yet checked).
+type GotStart struct {
+	Now time.Duration
+	Msg Start
+}
+
+// GotDecision: a decision arrived on the subject of robot Subject (-1 when
+// the subject names none).
+type GotDecision struct {
+	Now     time.Duration
+	Subject int
+	Msg     Decision
+}
+
+// GotClose: a round close arrived.
+type GotClose struct {
+	Now time.Duration
+	Msg Close
+}
+
+// GotHello: a report request arrived.
+type GotHello struct {
+	Now time.Duration
+	Msg Hello
+}
+
+// Timer: a timer the machine armed has fired.
+type Timer struct {
+	Now          time.Duration
+	Epoch, Round uint64
+}
+
+// Computed: the driver finished the Compute the machine asked for.
+type Computed struct {
+	Now          time.Duration
+	Epoch, Round uint64
+	Control      int
+	Took         time.Duration
+}
+
+func (GotStart) isEvent()    {}
+func (GotDecision) isEvent() {}
+func (GotClose) isEvent()    {}
+func (GotHello) isEvent()    {}
+func (Timer) isEvent()       {}
+func (Computed) isEvent()    {}
+
+// Action is one output of the machine.
+type Action interface{ isAction() }
+
+// Arm asks the driver to deliver Timer{Epoch, Round} at time At (same clock
+// as Now).
+type Arm struct {
+	Epoch, Round uint64
+	At           time.Duration
+}
+
+// Compute asks the driver to run this robot's rollout turn. Known[j] is the
+// control of robot j when it is a predecessor that was heard, -1 otherwise;
+// Guess lists the predecessors the guess source must fill in, in turn order;
+// every other robot (successors, robots not in the order) is at its base
+// control, which is what decide.Decider.Turn does for entries of -1. The
+// driver must not modify State or the slices.
+type Compute struct {
+	Epoch, Round uint64
+	Known        []int
+	Guess        []int
+	State        model.State
+	Params       Params
+	Order        []int
+	Mode         Mode
+	GuessSource  string
+	// Last is every robot's control in the previous round as closed (-1
+	// where it held), nil when that close was not seen: the last source.
+	Last []int
+	// Due is when this robot's decision is due (same clock as Now): what a
+	// guess source that spends time must leave room for.
+	Due time.Duration
+}
+
+// Publish asks the driver to send this robot's decision. Since is how long
+// after the round's start it was reached (the turn's latency).
+type Publish struct {
+	Decision Decision
+	Mode     Mode
+	Since    time.Duration
+}
+
+// SendReport asks the driver to send a report to the coordinator: the
+// robot's own (accepted by Observe), or the latest one again because a
+// coordinator asked (Resent).
+type SendReport struct {
+	Report Report
+	Resent bool
+}
+
+// Began tells the driver a round start was admitted (metrics, model
+// fetches, benchmarks).
+type Began struct {
+	Epoch, Round uint64
+	NewRun       bool // the first round of a coordinator run this robot follows
+	InOrder      bool
+	Mode         Mode
+	Guess        string
+	ModelVersion uint64
+	Resync       bool // admitted only because its run kept coming (ResyncAfter)
+}
+
+// Note is something the operator should read in the log.
+type Note struct {
+	Warn bool
+	Text string
+}
+
+func (Arm) isAction()        {}
+func (Compute) isAction()    {}
+func (Publish) isAction()    {}
+func (SendReport) isAction() {}
+func (Began) isAction()      {}
+func (Note) isAction()       {}
+
+// Set parses a mode name, so a Mode can be a command-line flag.
+func (m *Mode) Set(s string) error {
+	v, ok := ParseMode(s)
+	if !ok {
+		return fmt.Errorf("%q: use sequential, parallel or hybrid", s)
+	}
+	*m = v
+	return nil
 }

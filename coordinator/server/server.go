@@ -13,9 +13,7 @@ import (
 	"net/http"
 	"os"
 	"os/signal"
-	"slices"
 	"strconv"
-	"strings"
 	"syscall"
 	"time"
 
@@ -25,11 +23,9 @@ import (
 	"github.com/prometheus/client_golang/prometheus/promhttp"
 	"go.uber.org/zap"
 
-	"baton/agentd/turn"
+	"baton/coordinator/clock"
 	"baton/coordinator/hub"
 	"baton/deploy/shell"
-	pb "baton/proto"
-	bsignal "baton/signal"
 	"baton/signal/learn"
 	"baton/sim/model"
 )
@@ -48,21 +44,12 @@ func Main(args []string) int {
 	fs := flag.NewFlagSet("coordinator", flag.ContinueOnError)
 	var c shell.Common
 	c.Register(fs, "robots must use the same")
+	cfg := clock.DefaultConfig()
+	cfg.RegisterFlags(fs)
+	cfg.RegisterSeed(fs)
 	embed := fs.Bool("embed-nats", false, "run an embedded NATS server in this process (nothing else to install)")
 	embedListen := fs.String("embed-listen", "127.0.0.1:4222", "address of the embedded NATS server")
-	seed := fs.Uint64("seed", 1, "fleet seed for every robot's Monte Carlo")
-	samples := fs.Int("samples", 16, "Monte Carlo samples per Q-factor")
-	horizon := fs.Int("horizon", 20, "base-policy steps simulated after the first step")
-	termCost := fs.Bool("terminal-cost", false, "add the scenario's cost-to-go estimate at truncation")
-	modeName := fs.String("mode", "hybrid", "sequential, parallel or hybrid")
 	guessModel := fs.String("guess-model", "", "trained guess model file (sim train --out) to distribute to the robots through JetStream; watched for new versions")
-	guess := fs.String("guess", "base", "the fleet's guess source for missing predecessors: "+strings.Join(bsignal.Names(), ", "))
-	autoParallel := fs.Bool("auto-parallel", false, "switch rounds to parallel when measured links are too slow for --period")
-	turnDeadline := fs.Duration("turn-deadline", 200*time.Millisecond, "time each turn gets; turn k is due (k+1) x this after the round starts")
-	period := fs.Duration("period", 0, "start rounds at most this often (0: as soon as the previous round's reports are in)")
-	rounds := fs.Int("rounds", 0, "stop after this many rounds (0: run until stopped)")
-	reportWait := fs.Duration("report-wait", 2*time.Second, "how long to wait for robots' reports after a round")
-	orderFlag := fs.String("order", "", "preferred turn order, e.g. 2,0,1 (default 0..m-1)")
 	logFile := fs.String("decision-log", "", "append one JSON line per round to this file")
 	httpAddr := fs.String("http", "127.0.0.1:7480", "healthz and metrics address")
 	gossip := fs.String("gossip", "127.0.0.1:7946", "gossip bind host:port that robots --join")
@@ -75,29 +62,15 @@ func Main(args []string) int {
 		return 2
 	}
 	defer lg.Sync()
-	mode, ok := turn.ParseMode(*modeName)
-	if !ok {
-		return fail(fmt.Errorf("--mode %q: use sequential, parallel or hybrid", *modeName))
-	}
-	if !slices.Contains(bsignal.Names(), *guess) {
-		return fail(fmt.Errorf("--guess %q: use one of %s", *guess, strings.Join(bsignal.Names(), ", ")))
-	}
-	if *turnDeadline <= 0 {
-		return fail(fmt.Errorf("--turn-deadline must be positive, got %s", *turnDeadline))
-	}
-	if *samples < 1 || *horizon < 0 {
-		return fail(fmt.Errorf("--samples must be >= 1 and --horizon >= 0"))
-	}
 	fl, err := c.Load()
 	if err != nil {
 		return fail(err)
 	}
 	m := fl.Model
-	order, err := parseOrder(*orderFlag, m.Robots())
-	if err != nil {
+	cfg.Fleet, cfg.Model, cfg.Digest = c.Fleet, m, fl.Digest
+	if err := cfg.Validate(); err != nil {
 		return fail(err)
 	}
-	subj, digest := fl.Subjects, fl.Digest
 	url := c.NATS
 	natsSet := false
 	fs.Visit(func(f *flag.Flag) { natsSet = natsSet || f.Name == "nats" })
@@ -109,7 +82,10 @@ func Main(args []string) int {
 		if err != nil {
 			return fail(fmt.Errorf("--embed-listen %q: %w", *embedListen, err))
 		}
-		port, _ := strconv.Atoi(portStr)
+		port, err := strconv.Atoi(portStr)
+		if err != nil || port < 0 || port > 65535 {
+			return fail(fmt.Errorf("--embed-listen %q: bad port", *embedListen))
+		}
 		ns, u, err := shell.EmbeddedNATS(host, port)
 		if err != nil {
 			return fail(err)
@@ -118,7 +94,11 @@ func Main(args []string) int {
 		url = u
 		lg.Info("embedded NATS server up", zap.String("url", u))
 	}
-	nc, err := shell.Connect(url, c.Creds, "coordinator-"+c.Fleet, c.ConnectTimeout, lg)
+	reg := prometheus.NewRegistry()
+	reg.MustRegister(collectors.NewGoCollector(), collectors.NewProcessCollector(collectors.ProcessCollectorOpts{}))
+	met := hub.NewMetrics(reg)
+	nc, err := shell.Connect(url, c.Creds, "coordinator-"+c.Fleet, c.ConnectTimeout, lg,
+		shell.ClientErrors(lg, func(kind string) { met.NATSErrors.WithLabelValues(kind).Inc() }))
 	if err != nil {
 		return fail(err)
 	}
@@ -139,24 +119,10 @@ func Main(args []string) int {
 		logW = bufio.NewWriter(f)
 		defer logW.Flush()
 	}
-	reg := prometheus.NewRegistry()
-	reg.MustRegister(collectors.NewGoCollector(), collectors.NewProcessCollector(collectors.ProcessCollectorOpts{}))
-	h := int32(*horizon)
-	if h == 0 {
-		h = -1 // 0 means "first step only" on the wire, not decide's default
-	}
-	cfg := hub.Config{Fleet: c.Fleet, Subjects: subj, Model: m, Digest: digest, Mode: mode, Guess: *guess,
-		Params:     &pb.DecideParams{Samples: uint32(*samples), Horizon: h, TerminalCost: *termCost, FleetSeed: *seed},
-		TurnBudget: *turnDeadline, Period: *period, Rounds: *rounds, ReportWait: *reportWait, Order: order,
-		Alive: func() []int { return shell.AliveRobots(ml, c.Fleet) }, AutoParallel: *autoParallel,
-		Log: lg, Metrics: hub.NewMetrics(reg),
-		OnRound: func(r hub.Record) {
-			lg.Debug("round closed", zap.Uint64("round", r.Round), zap.Ints("order", r.Order), zap.Ints("held", r.Held),
-				zap.Uint64("latency_us", r.LatencyUs))
-		},
-	}
+	hcfg := hub.Config{Clock: cfg, Subjects: fl.Subjects, Alive: func() []int { return shell.AliveRobots(ml, c.Fleet) },
+		Log: lg, Metrics: met}
 	if logW != nil {
-		cfg.DecisionLog = logW
+		hcfg.DecisionLog = logW
 	}
 	ctx, stop := signal.NotifyContext(context.Background(), os.Interrupt, syscall.SIGTERM)
 	defer stop()
@@ -176,16 +142,17 @@ func Main(args []string) int {
 	srv := &http.Server{Handler: mux, ReadHeaderTimeout: 5 * time.Second}
 	go func() { _ = srv.Serve(ln) }()
 	defer srv.Close()
+	hb := hub.New(hcfg, shell.NATSBus{Conn: nc})
 	lg.Info("coordinator up", zap.String("fleet", c.Fleet), zap.String("scenario", m.Name()), zap.Int("robots", m.Robots()),
-		zap.String("nats", nc.ConnectedUrl()), zap.String("gossip", *gossip), zap.String("mode", mode.String()), zap.String("guess", *guess), zap.String("digest", digest))
-	hb := hub.New(cfg, nc)
+		zap.String("nats", nc.ConnectedUrl()), zap.String("gossip", *gossip), zap.String("mode", cfg.Mode.String()),
+		zap.String("guess", cfg.Guess), zap.String("digest", fl.Digest), zap.Uint64("epoch", hb.Epoch()))
 	if *guessModel != "" {
 		pub := &modelPublisher{file: *guessModel, m: m, nc: nc, bucket: shell.ModelBucket(c.Prefix, c.Fleet), hub: hb, lg: lg}
 		if err := pub.check(ctx); err != nil {
 			return fail(fmt.Errorf("--guess-model: %w", err))
 		}
 		go pub.watch(ctx)
-	} else if *guess == "learned" {
+	} else if cfg.Guess == "learned" {
 		lg.Warn("--guess learned without --guess-model: robots guess with whatever model they were started with, or the base policy")
 	}
 	if err := hb.Run(ctx); err != nil && !errors.Is(err, context.Canceled) {
@@ -193,23 +160,6 @@ func Main(args []string) int {
 	}
 	lg.Info("coordinator stopped")
 	return 0
-}
-
-func parseOrder(s string, m int) ([]int, error) {
-	if s == "" {
-		return nil, nil
-	}
-	seen := map[int]bool{}
-	var out []int
-	for _, f := range strings.Split(s, ",") {
-		v, err := strconv.Atoi(strings.TrimSpace(f))
-		if err != nil || v < 0 || v >= m || seen[v] {
-			return nil, fmt.Errorf("--order %q: want distinct robot ids 0..%d", s, m-1)
-		}
-		seen[v] = true
-		out = append(out, v)
-	}
-	return out, nil
 }
 
 // modelPublisher keeps the fleet's guess model in the object store: it

@@ -34,7 +34,7 @@ func (c *Common) Register(fs *flag.FlagSet, configHelp string) {
 	fs.StringVar(&c.Prefix, "prefix", "baton", "NATS subject prefix")
 	fs.StringVar(&c.Scenario, "scenario", "harbor", "scenario: "+strings.Join(scenarios.Names(), " or "))
 	fs.StringVar(&c.Config, "config", "", "scenario YAML file (default: the built-in demo); "+configHelp)
-	fs.IntVar(&c.Robots, "robots", 0, "fleet size (default: the file's or demo's own)")
+	fs.Var((*scenarios.Robots)(&c.Robots), "robots", scenarios.RobotsUsage)
 	fs.DurationVar(&c.ConnectTimeout, "connect-timeout", 30*time.Second, "keep retrying an unreachable NATS server this long")
 	fs.StringVar(&c.LogLevel, "log-level", "info", "debug, info, warn or error")
 	fs.BoolVar(&c.LogJSON, "log-json", false, "log JSON lines")

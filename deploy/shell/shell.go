@@ -48,7 +48,7 @@ func Logger(level string, json bool, name string) (*zap.Logger, error) {
 
 // Connect dials the NATS URL list, retrying every second until timeout
 // when no server answers, and keeps reconnecting after that.
-func Connect(urls, creds, name string, timeout time.Duration, lg *zap.Logger) (*nats.Conn, error) {
+func Connect(urls, creds, name string, timeout time.Duration, lg *zap.Logger, extra ...nats.Option) (*nats.Conn, error) {
 	if strings.TrimSpace(urls) == "" {
 		return nil, errors.New("--nats: give at least one NATS URL, e.g. nats://127.0.0.1:4222")
 	}
@@ -73,6 +73,7 @@ func Connect(urls, creds, name string, timeout time.Duration, lg *zap.Logger) (*
 		}),
 		nats.ReconnectHandler(func(c *nats.Conn) { lg.Info("NATS reconnected", zap.String("url", c.ConnectedUrl())) }),
 	}
+	opts = append(opts, extra...)
 	if creds != "" {
 		if _, err := os.Stat(creds); err != nil {
 			return nil, fmt.Errorf("--creds: %w", err)

@@ -12,6 +12,7 @@ import (
 	"baton/agentd/decide"
 	"baton/agentd/node"
 	"baton/agentd/turn"
+	"baton/coordinator/clock"
 	"baton/coordinator/hub"
 	"baton/deploy/shell"
 	pb "baton/proto"
@@ -23,7 +24,7 @@ import (
 // runFleet plays rounds of a 4-boat harbor fleet in parallel mode with the
 // coordinator naming guess, over an embedded NATS server: real nodes, real
 // hub, a seeded world fed by the round closes. It returns the hub's records.
-func runFleet(t *testing.T, guess string, rounds int, params *pb.DecideParams, with ...func(*hub.Config)) []hub.Record {
+func runFleet(t *testing.T, guess string, rounds int, params *pb.DecideParams, with ...func(*clock.Config)) []clock.Record {
 	t.Helper()
 	ns, url, err := shell.EmbeddedNATS("127.0.0.1", 0)
 	if err != nil {
@@ -45,7 +46,9 @@ func runFleet(t *testing.T, guess string, rounds int, params *pb.DecideParams, w
 	var nodes []*node.Node
 	for r := range m.Robots() {
 		// Every node's fallback is base: the round start must pick the source.
-		n := node.New(node.Config{Fleet: "herd", Subjects: subj, Robot: r, Sender: "boat", Model: m}, connect())
+		cfg := node.DefaultConfig()
+		cfg.Fleet, cfg.Subjects, cfg.Robot, cfg.Sender, cfg.Model = "herd", subj, r, "boat", m
+		n := node.New(cfg, shell.NATSBus{Conn: connect()})
 		nodes = append(nodes, n)
 		go n.Run(ctx)
 	}
@@ -91,14 +94,17 @@ func runFleet(t *testing.T, guess string, rounds int, params *pb.DecideParams, w
 			}
 		}
 	}()
-	var recs []hub.Record
-	cfg := hub.Config{Fleet: "herd", Subjects: subj, Model: m, Params: params, Mode: turn.Parallel, Guess: guess,
-		TurnBudget: time.Second, Rounds: rounds, ReportWait: time.Second,
-		OnRound: func(r hub.Record) { recs = append(recs, r) }}
+	var recs []clock.Record
+	cc := clock.DefaultConfig()
+	cc.Fleet, cc.Model, cc.Mode, cc.Guess, cc.TurnBudget, cc.Rounds, cc.ReportWait = "herd", m, turn.Parallel, guess, time.Second, rounds, time.Second
+	cc.Decide, cc.Seed = decide.Config{Samples: int(params.Samples), Horizon: int(params.Horizon)}, params.FleetSeed
 	for _, f := range with {
-		f(&cfg)
+		f(&cc)
 	}
-	h := hub.New(cfg, connect())
+	if err := cc.Validate(); err != nil {
+		t.Fatal(err)
+	}
+	h := hub.New(hub.Config{Clock: cc, Subjects: subj, OnRound: func(r clock.Record) { recs = append(recs, r) }}, shell.NATSBus{Conn: connect()})
 	if err := h.Run(ctx); err != nil {
 		t.Fatal(err)
 	}
@@ -169,7 +175,7 @@ func guessOf(m model.Model, x model.State, guess string, prev []int, p int) int 
 func TestAutoParallel(t *testing.T) {
 	params := &pb.DecideParams{Samples: 2, Horizon: 3, FleetSeed: 1}
 	modes := func(auto bool) []string {
-		recs := runFleet(t, "base", 4, params, func(c *hub.Config) {
+		recs := runFleet(t, "base", 4, params, func(c *clock.Config) {
 			c.Mode, c.Period, c.AutoParallel = turn.Hybrid, time.Microsecond, auto
 		})
 		var out []string

@@ -81,3 +81,6 @@ func BaseJoint(m Model, s State, u []int) {
 		u[r] = m.Base(s, r)
 	}
 }
+
+// MaxRobots bounds a fleet's size (the round protocol's bound too).
+const MaxRobots = 1024

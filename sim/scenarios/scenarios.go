@@ -5,6 +5,7 @@ package scenarios
 import (
 	"fmt"
 	"sort"
+	"strconv"
 	"strings"
 
 	"baton/sim/harbor"
@@ -65,3 +66,28 @@ func Load(name, file string, robots int) (model.Model, error) {
 	}
 	return l.file(file, robots)
 }
+
+// Robots is a --robots flag: a fleet size from 1 to model.MaxRobots, or
+// unset (0: the file's or the demo's own). An explicit 0 is refused rather
+// than taken as "the default".
+type Robots int
+
+func (r Robots) String() string {
+	if r == 0 {
+		return ""
+	}
+	return strconv.Itoa(int(r))
+}
+
+// Set parses a fleet size.
+func (r *Robots) Set(s string) error {
+	v, err := strconv.Atoi(strings.TrimSpace(s))
+	if err != nil || v < 1 || v > model.MaxRobots {
+		return fmt.Errorf("want a fleet size from 1 to %d", model.MaxRobots)
+	}
+	*r = Robots(v)
+	return nil
+}
+
+// RobotsUsage is the --robots flag's help.
+const RobotsUsage = "number of robots (default: the file's or demo's own)"
