@@ -62,7 +62,7 @@ type fleetOpts struct {
 	guessModel string // model file the coordinator distributes
 	exe        string // the binary that runs `agentd` and `coordinator`
 	// The virtual-time fleet instead of processes, with its link model.
-	virtual  bool
+	virtual     bool
 	link        vfleet.Link
 	turnTime    time.Duration
 	virtualOnly []string // virtual-only flags given on the command line
