@@ -4,7 +4,6 @@ import (
 	"bufio"
 	"context"
 	"encoding/json"
-	"io"
 	"os"
 	"os/exec"
 	"slices"
@@ -233,51 +232,6 @@ func TestUnreachableNATS(t *testing.T) {
 	s := string(out)
 	if !strings.Contains(s, "cannot reach NATS; retrying in 1s") || !strings.Contains(s, "cannot reach NATS at nats://127.0.0.1:1 after") || strings.Contains(s, "panic") {
 		t.Fatalf("want a retry and a clear error:\n%s", s)
-	}
-}
-
-// A coordinator that dies and comes back finds its robots again (they
-// re-join gossip), starts again from their reports, and they take its
-// rounds even though it numbers them from 1 again.
-func TestFleetCoordinatorRestart(t *testing.T) {
-	f := testFleet(t, opts("harbor", 3, 200, 4, nil))
-	for r := 1; r <= 3; r++ {
-		if res := f.play(r); res.Held != 0 {
-			t.Fatalf("round %d: %d held", r, res.Held)
-		}
-	}
-	ctx, cancel := context.WithTimeout(context.Background(), 45*time.Second)
-	defer cancel()
-	// Down long enough for gossip to declare it dead everywhere.
-	if err := f.restartCoordinator(ctx, 3*time.Second); err != nil {
-		t.Fatal(err)
-	}
-	// Nobody re-reports by hand: the new coordinator asks, and each agentd
-	// re-sends its robot's latest report.
-	// Round numbers start again at 1: wait until every robot is on the new
-	// run's round 1 before asking for "round 1" (the old run had one too).
-	for _, b := range f.bases {
-		deadline := time.Now().Add(20 * time.Second)
-		for {
-			resp, err := f.client.Get(b + "/healthz")
-			if err == nil {
-				body, _ := io.ReadAll(resp.Body)
-				resp.Body.Close()
-				if strings.Contains(string(body), " round 1\n") {
-					break
-				}
-			}
-			if time.Now().After(deadline) {
-				t.Fatalf("%s never started the new coordinator's round 1", b)
-			}
-			time.Sleep(20 * time.Millisecond)
-		}
-	}
-	for r := 1; r <= 3; r++ {
-		res := f.play(r)
-		if res.Held != 0 {
-			t.Fatalf("round %d after the restart: %d robots held", r, res.Held)
-		}
 	}
 }
 

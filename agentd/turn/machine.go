@@ -564,8 +564,6 @@ func (m *Machine) onClose(e GotClose) []Action {
 	switch {
 	case ent == nil:
 		return m.drop(DropStale, who, "close of round %d, which is over (current round %d)", c.Round, m.cur.round)
-	case ent.closed:
-		return m.drop(DropDuplicate, who, "round %d already closed", c.Round)
 	case len(c.Controls) != m.robots:
 		return m.drop(DropMalformed, who, "round close with %d controls for %d robots", len(c.Controls), m.robots)
 	case c.LatencyUs > uint64(MaxLatency/time.Microsecond):
@@ -587,6 +585,9 @@ func (m *Machine) onClose(e GotClose) []Action {
 			return m.drop(DropMalformed, who, "robot %d listed twice as held", h)
 		}
 		held[h] = true
+	}
+	if ent.closed {
+		return m.drop(DropDuplicate, who, "round %d already closed", c.Round)
 	}
 	ent.closed, ent.closeCtl, ent.held, ent.latency = true, int(c.Controls[m.cfg.Robot]), held[m.cfg.Robot], c.LatencyUs
 	ent.stalled = int(c.Stalled) - 1

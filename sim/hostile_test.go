@@ -1,0 +1,273 @@
+package main
+
+import (
+	"bufio"
+	"context"
+	"encoding/json"
+	"io"
+	"os"
+	"regexp"
+	"strconv"
+	"strings"
+	"testing"
+	"time"
+
+	"github.com/nats-io/nats.go"
+
+	"baton/agentd/turn"
+	"baton/coordinator/clock"
+	"baton/deploy/shell"
+	pb "baton/proto"
+	"baton/proto/wire"
+	"baton/sim/model"
+)
+
+// metric reads one labelled counter from a /metrics page (0 when absent).
+func metric(t *testing.T, f *fleetRun, url, name, reason string) float64 {
+	t.Helper()
+	resp, err := f.client.Get(url + "/metrics")
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer resp.Body.Close()
+	body, _ := io.ReadAll(resp.Body)
+	re := regexp.MustCompile(`(?m)^` + name + `\{reason="` + regexp.QuoteMeta(reason) + `"\} (\S+)$`)
+	m := re.FindSubmatch(body)
+	if m == nil {
+		return 0
+	}
+	v, _ := strconv.ParseFloat(string(m[1]), 64)
+	return v
+}
+
+// Hostile messages on the real bus reach real daemons: each is dropped and
+// counted by its reason at every robot (or at the coordinator), and the
+// fleet keeps deciding every round.
+func TestHostileMessages(t *testing.T) {
+	const robots = 3
+	f := testFleet(t, opts("harbor", robots, 200, 6, nil))
+	for r := 1; r <= 2; r++ {
+		if res := f.play(r); res.Held != 0 {
+			t.Fatalf("round %d: %d held before any hostile message", r, res.Held)
+		}
+	}
+	rec := record(t, f, 2)
+	digest, err := shell.Digest("harbor", "", robots)
+	if err != nil {
+		t.Fatal(err)
+	}
+	nc, err := nats.Connect(f.url)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer nc.Close()
+	subj, _ := pb.NewSubjects("baton", "test")
+	send := func(subject string, data []byte, err error) {
+		t.Helper()
+		if err != nil {
+			t.Fatal(err)
+		}
+		if err := nc.Publish(subject, data); err != nil {
+			t.Fatal(err)
+		}
+	}
+	start := func(round uint64, mutate func(*turn.Start)) {
+		s := turn.Start{Fleet: "test", Epoch: rec.Epoch, Round: round, Sender: "intruder", Scenario: "harbor",
+			Ints: rec.Snapshot.Ints, Reals: rec.Snapshot.Reals, Order: []uint32{0, 1, 2}, DeadlinesUs: []uint64{1e5, 2e5, 3e5},
+			Mode: turn.Hybrid, Params: turn.Params{Samples: 4, Horizon: 6}, Digest: digest, Guess: "base"}
+		mutate(&s)
+		data, err := wire.EncodeStart(s)
+		send(subj.Round, data, err)
+	}
+	// Absurd Monte Carlo effort (used to run every daemon out of memory).
+	start(3, func(s *turn.Start) { s.Params.Samples = 1 << 31 })
+	// A far-future round (used to leave every robot holding).
+	start(1<<40, func(*turn.Start) {})
+	// Closes with controls that do not exist, and for a round not started.
+	data, err := wire.EncodeClose(turn.Close{Fleet: "test", Epoch: rec.Epoch, Round: 2, Controls: []int32{-99, 0, 0}, Held: []uint32{}})
+	send(subj.Close, data, err)
+	data, err = wire.EncodeClose(turn.Close{Fleet: "test", Epoch: rec.Epoch, Round: 500, Controls: []int32{0, 0, 0}})
+	send(subj.Close, data, err)
+	// Robot 1's decision on robot 2's subject.
+	data, err = wire.EncodeDecision(turn.Decision{Fleet: "test", Epoch: rec.Epoch, Round: 3, Robot: 1, Control: 1})
+	send(subj.DecisionOf(2), data, err)
+	// An observation naming robot 2 on robot 0's subject.
+	data, err = wire.EncodeReport(turn.Report{Fleet: "test", Epoch: rec.Epoch, Round: 2, Robot: 2, Position: 0})
+	send(subj.ObsOf(0), data, err)
+	// A report request from a run older than the one followed.
+	data, err = wire.EncodeHello(turn.Hello{Fleet: "test", Epoch: rec.Epoch - 1})
+	send(subj.Hello, data, err)
+	if err := nc.Flush(); err != nil {
+		t.Fatal(err)
+	}
+
+	for r := 3; r <= 8; r++ {
+		if res := f.play(r); res.Held != 0 {
+			t.Fatalf("round %d after the hostile messages: %d robots held", r, res.Held)
+		}
+	}
+	const robotDrops = "baton_messages_dropped_total"
+	for r, b := range f.bases {
+		for _, reason := range []string{"out-of-bounds", "future", "out-of-range", "wrong-subject", "stale"} {
+			want := 1.0
+			if reason == "future" {
+				want = 2 // the far-future round start and the close of round 500
+			}
+			if got := metric(t, f, b, robotDrops, reason); got < want {
+				t.Errorf("agentd %d counted %g %q drops, want at least %g", r, got, reason, want)
+			}
+		}
+	}
+	coord := "http://" + f.chttp
+	for _, reason := range []string{"wrong-subject"} {
+		if got := metric(t, f, coord, "baton_coordinator_dropped_total", reason); got < 2 {
+			t.Errorf("coordinator counted %g %q drops, want the decision and the report", got, reason)
+		}
+	}
+}
+
+// A coordinator SIGKILLed mid-run and started again: the robots follow the
+// new run at once, its first round has every robot at the position it
+// reported, and the decision log tells the two runs apart.
+func TestFleetCoordinatorKilled(t *testing.T) {
+	f := testFleet(t, opts("harbor", 3, 200, 4, nil))
+	for r := 1; r <= 3; r++ {
+		if res := f.play(r); res.Held != 0 {
+			t.Fatalf("round %d: %d held", r, res.Held)
+		}
+	}
+	old := record(t, f, 3)
+	ctx, cancel := context.WithTimeout(context.Background(), 45*time.Second)
+	defer cancel()
+	// Down long enough for gossip to declare it dead everywhere.
+	if err := f.restartCoordinator(ctx, 3*time.Second); err != nil {
+		t.Fatal(err)
+	}
+	waitNewRun(t, f)
+	// Where the robots are: what they reported after the old run's round
+	// 3 (the world has not moved since).
+	reported := make([]int32, f.m.Robots())
+	for r := range reported {
+		reported[r], _ = f.world.Report(r)
+	}
+	for r := 1; r <= 3; r++ {
+		if res := f.play(r); res.Held != 0 {
+			t.Fatalf("round %d of the new run: %d robots held", r, res.Held)
+		}
+	}
+	lines := logLines(t, f)
+	runs := map[uint64][]uint64{}
+	seen := map[[2]uint64]bool{}
+	var first *clock.Record
+	for i, l := range lines {
+		if seen[[2]uint64{l.Epoch, l.Round}] {
+			t.Fatalf("(epoch %d, round %d) logged twice", l.Epoch, l.Round)
+		}
+		seen[[2]uint64{l.Epoch, l.Round}] = true
+		runs[l.Epoch] = append(runs[l.Epoch], l.Round)
+		if l.Epoch != old.Epoch && l.Round == 1 {
+			first = &lines[i]
+		}
+	}
+	if len(runs) != 2 || first == nil || first.Epoch <= old.Epoch {
+		t.Fatalf("want two runs in the log, the new one later: %v", runs)
+	}
+	// The new run's round 1 decided on the positions the robots reported
+	// (re-sent on request), which are the world's.
+	x := f.m.NewState()
+	if err := f.m.Unflatten(x, first.Snapshot.Ints, first.Snapshot.Reals); err != nil {
+		t.Fatal(err)
+	}
+	// A coordinator that ignored the reports would start from this.
+	blank := f.m.NewState()
+	f.m.Start(blank, model.NewRNG(0).Rand)
+	moved := false
+	for r, want := range reported {
+		moved = moved || f.m.Position(blank, r) != want
+		if got := f.m.Position(x, r); got != want {
+			t.Errorf("new run's round 1 has robot %d at %d, it reported %d", r, got, want)
+		}
+	}
+	if !moved {
+		t.Fatal("the robots are where a fresh coordinator would put them anyway: the check proves nothing")
+	}
+	coordLog, _ := os.ReadFile(f.o.logDir + "/coordinator.log")
+	if strings.Contains(string(coordLog), "without a report") {
+		t.Errorf("the restarted coordinator started without some robot's report:\n%s", coordLog)
+	}
+}
+
+// Sequential mode with a robot whose decisions never come in time: every
+// round closes at the last deadline, the robots after it hold, the round's
+// real latency is reported to every robot's software, and the coordinator
+// names the robot that stalled (not the ones that waited).
+func TestSequentialStall(t *testing.T) {
+	const budget = 150 * time.Millisecond
+	o := opts("harbor", 4, 200, 2, func(c *clock.Config) { c.Mode, c.TurnBudget = turn.Sequential, budget })
+	o.slow = faults{1: 2 * time.Second}
+	f := testFleet(t, o)
+	for r := 1; r <= 3; r++ {
+		res := f.play(r)
+		if res.Held != 3 || res.Decided[0] < 0 {
+			t.Fatalf("round %d: %+v, want robot 0 decided and 1, 2, 3 held", r, res)
+		}
+		if lat := time.Duration(res.LatencyUs) * time.Microsecond; lat < 4*budget || lat > 4*budget+200*time.Millisecond {
+			t.Fatalf("round %d: latency %s, want the last deadline %s", r, lat, 4*budget)
+		}
+		rec := record(t, f, r)
+		if rec.Stalled == nil || *rec.Stalled != 1 {
+			t.Fatalf("round %d: stalled_by %v, want robot 1", r, rec.Stalled)
+		}
+	}
+	b, _ := os.ReadFile(f.o.logDir + "/coordinator.log")
+	logText := string(b)
+	if !strings.Contains(logText, "stalled on robot 1") || !strings.Contains(logText, "robots [2 3] after it were waiting") {
+		t.Fatalf("the coordinator does not name the robot that stalled:\n%s", logText)
+	}
+	if strings.Contains(logText, "robot 2 is alive but has missed") || strings.Contains(logText, "robot 3 is alive but has missed") {
+		t.Fatalf("the coordinator blames robots that were only waiting:\n%s", logText)
+	}
+}
+
+func logLines(t *testing.T, f *fleetRun) []clock.Record {
+	t.Helper()
+	file, err := os.Open(f.decisionLog())
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer file.Close()
+	var out []clock.Record
+	sc := bufio.NewScanner(file)
+	sc.Buffer(nil, 1<<24)
+	for sc.Scan() {
+		var rec clock.Record
+		if err := json.Unmarshal(sc.Bytes(), &rec); err != nil {
+			t.Fatalf("decision log line %q: %v", sc.Text(), err)
+		}
+		out = append(out, rec)
+	}
+	return out
+}
+
+// waitNewRun waits until every robot follows a run's round 1 again.
+func waitNewRun(t *testing.T, f *fleetRun) {
+	t.Helper()
+	for _, b := range f.bases {
+		deadline := time.Now().Add(20 * time.Second)
+		for {
+			resp, err := f.client.Get(b + "/healthz")
+			if err == nil {
+				body, _ := io.ReadAll(resp.Body)
+				resp.Body.Close()
+				if strings.HasSuffix(string(body), " round 1\n") {
+					break
+				}
+			}
+			if time.Now().After(deadline) {
+				t.Fatalf("%s never started the new coordinator's round 1", b)
+			}
+			time.Sleep(20 * time.Millisecond)
+		}
+	}
+}
+
