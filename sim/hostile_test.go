@@ -270,4 +270,3 @@ func waitNewRun(t *testing.T, f *fleetRun) {
 		}
 	}
 }
-
