@@ -45,8 +45,7 @@ type Node struct {
 	drops    shell.Drops
 	lateSeen uint64
 	turnTook time.Duration
-	subs     []shell.Sub
-	subDrop  []int
+	subs     shell.SubDrops
 }
 
 // New prepares a node on a bus; cfg must pass Validate.
@@ -98,9 +97,8 @@ func (n *Node) Run(ctx context.Context) error {
 			return fmt.Errorf("subscribe %s: %w", sub.subject, err)
 		}
 		defer ss.Unsubscribe()
-		n.subs = append(n.subs, ss)
+		n.subs.Add(ss)
 	}
-	n.subDrop = make([]int, len(n.subs))
 	if err := n.bus.Flush(); err != nil {
 		return fmt.Errorf("nats flush: %w", err)
 	}
@@ -129,7 +127,7 @@ func (n *Node) Run(ctx context.Context) error {
 		case m := <-n.models:
 			n.guesses.loaded(m)
 		case <-tick.C:
-			n.countClientDrops()
+			n.subs.Count(n.cfg.Metrics.Dropped)
 		}
 	}
 }
@@ -164,18 +162,6 @@ func (n *Node) receive(msg *nats.Msg) {
 		return
 	}
 	n.apply(n.step(ev))
-}
-
-// countClientDrops adds what the client dropped on full channels.
-func (n *Node) countClientDrops() {
-	for i, s := range n.subs {
-		d, err := s.Dropped()
-		if err != nil || d <= n.subDrop[i] {
-			continue
-		}
-		n.cfg.Metrics.Dropped.WithLabelValues(string(turn.DropSlowConsumer)).Add(float64(d - n.subDrop[i]))
-		n.subDrop[i] = d
-	}
 }
 
 func (n *Node) measureHop(ctx context.Context) {

@@ -179,10 +179,7 @@ func (m *Machine) drop(r DropReason, sender, format string, args ...any) []Actio
 
 func (m *Machine) onStart(e GotStart) []Action {
 	s := e.Msg
-	who := s.Sender
-	if len(who) > MaxName {
-		who = who[:MaxName]
-	}
+	who := Who(s.Sender)
 	switch {
 	case s.Fleet != m.cfg.Fleet:
 		return m.drop(DropForeign, who, "round start for fleet %.64q, this is %q", s.Fleet, m.cfg.Fleet)
@@ -433,15 +430,8 @@ func (m *Machine) compute(useHeard bool) Compute {
 func (m *Machine) onDecision(e GotDecision) []Action {
 	d := e.Msg
 	sender := strconv.FormatUint(uint64(d.Robot), 10)
-	switch {
-	case d.Fleet != m.cfg.Fleet:
-		return m.drop(DropForeign, sender, "decision for fleet %.64q, this is %q", d.Fleet, m.cfg.Fleet)
-	case len(d.Sender) > MaxName || len(d.Heard)+len(d.Guessed) > MaxRobots:
-		return m.drop(DropBounds, sender, "decision with a %d-byte sender and %d robots heard or guessed", len(d.Sender), len(d.Heard)+len(d.Guessed))
-	case uint64(d.Robot) >= uint64(m.robots):
-		return m.drop(DropRange, sender, "robot %d is not below fleet size %d", d.Robot, m.robots)
-	case e.Subject != int(d.Robot):
-		return m.drop(DropSubject, sender, "decision of robot %d on robot %d's subject", d.Robot, e.Subject)
+	if reason, why := CheckDecision(d, m.cfg.Fleet, m.robots, e.Subject); reason != "" {
+		return m.drop(reason, sender, "%s", why)
 	}
 	robot := int(d.Robot)
 	if robot == m.cfg.Robot {
@@ -544,10 +534,7 @@ func (m *Machine) onComputed(e Computed) []Action {
 
 func (m *Machine) onClose(e GotClose) []Action {
 	c := e.Msg
-	who := c.Sender
-	if len(who) > MaxName {
-		who = who[:MaxName]
-	}
+	who := Who(c.Sender)
 	switch {
 	case c.Fleet != m.cfg.Fleet:
 		return m.drop(DropForeign, who, "round close for fleet %.64q, this is %q", c.Fleet, m.cfg.Fleet)
@@ -610,10 +597,7 @@ func (m *Machine) onClose(e GotClose) []Action {
 
 func (m *Machine) onHello(e GotHello) []Action {
 	h := e.Msg
-	who := h.Sender
-	if len(who) > MaxName {
-		who = who[:MaxName]
-	}
+	who := Who(h.Sender)
 	switch {
 	case h.Fleet != m.cfg.Fleet:
 		return m.drop(DropForeign, who, "report request for fleet %.64q, this is %q", h.Fleet, m.cfg.Fleet)

@@ -184,6 +184,31 @@ type Drop struct {
 
 func (Drop) isAction() {}
 
+// CheckDecision is the part of a decision's admission that robots and the
+// coordinator share: fleet, sizes, the robot against the fleet and against
+// the subject it came on. It returns the reason and why, or "".
+func CheckDecision(d Decision, fleet string, robots, subject int) (DropReason, string) {
+	switch {
+	case d.Fleet != fleet:
+		return DropForeign, fmt.Sprintf("decision for fleet %.64q, this is %q", d.Fleet, fleet)
+	case len(d.Sender) > MaxName || len(d.Heard)+len(d.Guessed) > MaxRobots:
+		return DropBounds, fmt.Sprintf("decision with a %d-byte sender and %d robots heard or guessed", len(d.Sender), len(d.Heard)+len(d.Guessed))
+	case uint64(d.Robot) >= uint64(robots):
+		return DropRange, fmt.Sprintf("robot %d is not below fleet size %d", d.Robot, robots)
+	case subject != int(d.Robot):
+		return DropSubject, fmt.Sprintf("decision of robot %d on robot %d's subject", d.Robot, subject)
+	}
+	return "", ""
+}
+
+// Who is a sender name fit for logs and counters: at most MaxName bytes.
+func Who(sender string) string {
+	if len(sender) > MaxName {
+		return sender[:MaxName]
+	}
+	return sender
+}
+
 // names checks the strings a message carries against MaxName.
 func names(ss ...string) string {
 	for _, s := range ss {

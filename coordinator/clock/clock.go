@@ -618,15 +618,10 @@ func (c *Machine) stop() []Action {
 func (c *Machine) onDecision(e GotDecision) []Action {
 	d := e.Msg
 	who := strconv.FormatUint(uint64(d.Robot), 10)
+	if reason, why := turn.CheckDecision(d, c.cfg.Fleet, c.robots, e.Subject); reason != "" {
+		return c.drop(reason, who, "%s", why)
+	}
 	switch {
-	case d.Fleet != c.cfg.Fleet:
-		return c.drop(turn.DropForeign, who, "decision for fleet %.64q", d.Fleet)
-	case len(d.Sender) > turn.MaxName || len(d.Heard)+len(d.Guessed) > turn.MaxRobots:
-		return c.drop(turn.DropBounds, who, "decision with a %d-byte sender and %d robots heard or guessed", len(d.Sender), len(d.Heard)+len(d.Guessed))
-	case uint64(d.Robot) >= uint64(c.robots):
-		return c.drop(turn.DropRange, who, "robot %d is not below fleet size %d", d.Robot, c.robots)
-	case e.Subject != int(d.Robot):
-		return c.drop(turn.DropSubject, who, "decision of robot %d on robot %d's subject", d.Robot, e.Subject)
 	case d.Round == 0:
 		return c.drop(turn.DropMalformed, who, "round 0: rounds start at 1")
 	case d.Epoch < c.cfg.Epoch:

@@ -102,8 +102,7 @@ type Hub struct {
 	done    chan struct{}
 	drops   shell.Drops
 	alive   []int
-	subs    []shell.Sub
-	subDrop []int
+	subs    shell.SubDrops
 }
 
 // New prepares a hub on a bus. cfg.Clock must pass Validate; an epoch of 0
@@ -153,9 +152,8 @@ func (h *Hub) Run(ctx context.Context) error {
 			return fmt.Errorf("subscribe %s: %w", s.subject, err)
 		}
 		defer sub.Unsubscribe()
-		h.subs = append(h.subs, sub)
+		h.subs.Add(sub)
 	}
-	h.subDrop = make([]int, len(h.subs))
 	if err := h.bus.Flush(); err != nil {
 		return fmt.Errorf("nats flush: %w", err)
 	}
@@ -197,7 +195,7 @@ func (h *Hub) Run(ctx context.Context) error {
 		case <-members.C:
 			acts = h.members(false)
 		case <-second.C:
-			h.countClientDrops()
+			h.subs.Count(h.cfg.Metrics.Dropped)
 			continue
 		}
 		if done, err := h.apply(acts); done || err != nil {
@@ -228,17 +226,6 @@ func (h *Hub) members(first bool) []clock.Action {
 		return nil
 	}
 	return acts
-}
-
-func (h *Hub) countClientDrops() {
-	for i, s := range h.subs {
-		d, err := s.Dropped()
-		if err != nil || d <= h.subDrop[i] {
-			continue
-		}
-		h.cfg.Metrics.Dropped.WithLabelValues(string(turn.DropSlowConsumer)).Add(float64(d - h.subDrop[i]))
-		h.subDrop[i] = d
-	}
 }
 
 // apply carries out the machine's actions; done is true once every round

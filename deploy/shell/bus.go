@@ -6,6 +6,7 @@ import (
 	"time"
 
 	"github.com/nats-io/nats.go"
+	"github.com/prometheus/client_golang/prometheus"
 	"go.uber.org/zap"
 )
 
@@ -65,4 +66,30 @@ func ClientErrors(lg *zap.Logger, count func(kind string)) nats.Option {
 		}
 		lg.Warn("NATS client error", zap.String("kind", kind), zap.String("subject", subject), zap.Error(err))
 	})
+}
+
+// SubDrops turns the client's per-subscription drop counts into a counter
+// of dropped messages (reason "slow-consumer"); Count is called
+// periodically from the daemon's loop.
+type SubDrops struct {
+	subs []Sub
+	seen []int
+}
+
+// Add tracks one more subscription.
+func (s *SubDrops) Add(sub Sub) {
+	s.subs = append(s.subs, sub)
+	s.seen = append(s.seen, 0)
+}
+
+// Count adds what the client dropped since the last call to counter.
+func (s *SubDrops) Count(counter *prometheus.CounterVec) {
+	for i, sub := range s.subs {
+		d, err := sub.Dropped()
+		if err != nil || d <= s.seen[i] {
+			continue
+		}
+		counter.WithLabelValues("slow-consumer").Add(float64(d - s.seen[i]))
+		s.seen[i] = d
+	}
 }
