@@ -89,5 +89,9 @@
 // not fit the fleet's features, each with its own error (ErrTruncated,
 // ErrMagic, ErrChecksum, ErrScenario, ErrFeatureVersion, ErrShape; ErrFormat
 // for undecodable contents), so a robot keeps its previous model rather
-// than guessing with the wrong one.
+// than guessing with the wrong one. A file holds at most MaxFileBytes (64
+// MB of contents; Load checks the size before reading) and at most three
+// layers, and decoding n bytes allocates at most AllocPerByte*n +
+// AllocFixed bytes (FuzzUnmarshal and FuzzUnmarshalBody hold Unmarshal and
+// Check to it).
 package learn

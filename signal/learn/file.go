@@ -6,10 +6,12 @@ import (
 	"encoding/binary"
 	"errors"
 	"fmt"
+	"io"
 	"math"
 	"os"
 	"path/filepath"
 
+	"google.golang.org/protobuf/encoding/protowire"
 	"google.golang.org/protobuf/proto"
 
 	batonpb "baton/proto"
@@ -25,6 +27,26 @@ const (
 	// maxBody bounds the length field, so a corrupted one cannot make a
 	// reader try to hold gigabytes; real models are a few tens of kB.
 	maxBody = 64 << 20
+	// maxLayers is what Train builds: one or two hidden layers and the
+	// output layer.
+	maxLayers = 3
+)
+
+// MaxFileBytes is the largest model file: the header, at most 64 MB of
+// contents and the checksum. Load checks the size before reading.
+const MaxFileBytes = headerLen + maxBody + sumLen
+
+// The documented allocation bound of one Unmarshal or Check of n bytes:
+// AllocPerByte*n + AllocFixed. Nothing is sized by the length field (it is
+// checked against the data first) or by the declared layer sizes (they are
+// checked against the weights actually decoded); layers are counted before
+// decoding, since an empty one is two bytes that decode to a hundred. What
+// remains is the decoding itself, where values written one at a time (or
+// fields this build does not know) are appended, about 5 bytes allocated
+// per byte as the slice grows, and the copy of the weights into the net.
+const (
+	AllocPerByte = 8
+	AllocFixed   = 1 << 20
 )
 
 // Errors a model file is refused with; test with errors.Is.
@@ -120,6 +142,9 @@ func Unmarshal(data []byte) (*Net, Meta, error) {
 	if string(data[:len(Magic)]) != Magic {
 		return nil, Meta{}, refuse(ErrMagic, "bad magic: not a guess model file (starts %q, want %q)", data[:len(Magic)], Magic)
 	}
+	if len(data) > MaxFileBytes {
+		return nil, Meta{}, refuse(ErrFormat, "%v: %d bytes, more than the %d a model file may hold", ErrFormat, len(data), MaxFileBytes)
+	}
 	if len(data) < headerLen {
 		return nil, Meta{}, refuse(ErrTruncated, "truncated: %d bytes, the header alone is %d", len(data), headerLen)
 	}
@@ -139,6 +164,9 @@ func Unmarshal(data []byte) (*Net, Meta, error) {
 	if stored := data[headerLen+int(size):]; !bytes.Equal(sum[:], stored) {
 		return nil, Meta{}, refuse(ErrChecksum, "checksum mismatch: stored %x, contents hash to %x", stored, sum)
 	}
+	if countLayers(body) > maxLayers {
+		return nil, Meta{}, refuse(ErrShape, "shape mismatch: more than %d layers", maxLayers)
+	}
 	var pb batonpb.GuessModel
 	if err := proto.Unmarshal(body, &pb); err != nil {
 		return nil, Meta{}, refuse(ErrFormat, "%v: %v", ErrFormat, err)
@@ -150,11 +178,38 @@ func Unmarshal(data []byte) (*Net, Meta, error) {
 	return n, n.Meta(), nil
 }
 
+// countLayers counts the layers in a GuessModel's encoding without
+// decoding it: decoded, each layer costs a hundred bytes or so, and can be
+// written in two. It stops counting past maxLayers, and at anything
+// malformed, which proto.Unmarshal then reports.
+func countLayers(body []byte) int {
+	layers := 0
+	for len(body) > 0 && layers <= maxLayers {
+		num, typ, n := protowire.ConsumeTag(body)
+		if n < 0 {
+			break
+		}
+		body = body[n:]
+		if num == layersField {
+			layers++
+		}
+		n = protowire.ConsumeFieldValue(num, typ, body)
+		if n < 0 {
+			break
+		}
+		body = body[n:]
+	}
+	return layers
+}
+
+// layersField is GuessModel.layers' field number (proto/model.proto).
+const layersField = 9
+
 // fromPB checks that the layers chain from inputs to outputs with the
 // right number of finite weights, and builds the net.
 func fromPB(pb *batonpb.GuessModel) (*Net, error) {
 	inputs, outputs := int(pb.Inputs), int(pb.Outputs)
-	if inputs < 1 || outputs < 1 || len(pb.Layers) < 1 || len(pb.Layers) > 3 {
+	if inputs < 1 || outputs < 1 || len(pb.Layers) < 1 || len(pb.Layers) > maxLayers {
 		return nil, refuse(ErrShape, "shape mismatch: %d inputs, %d outputs, %d layers", inputs, outputs, len(pb.Layers))
 	}
 	var act Activation
@@ -291,15 +346,39 @@ func (n *Net) Save(path string, version uint64) (err error) {
 }
 
 // Load reads a model file and checks it against m as Check does; the
-// refusal says which check failed and is prefixed with the path.
+// refusal says which check failed and is prefixed with the path. A file
+// over MaxFileBytes is refused before it is read.
 func Load(path string, m model.Model) (*Net, Meta, error) {
-	data, err := os.ReadFile(path)
+	data, err := readModel(path)
 	if err != nil {
-		return nil, Meta{}, fmt.Errorf("learn: load guess model: %w", err)
+		return nil, Meta{}, err
 	}
 	n, meta, err := Check(data, m)
 	if err != nil {
 		return nil, Meta{}, fmt.Errorf("%s: %w", path, err)
 	}
 	return n, meta, nil
+}
+
+// readModel reads a model file whole, refusing one over MaxFileBytes
+// before reading it.
+func readModel(path string) ([]byte, error) {
+	f, err := os.Open(path)
+	if err != nil {
+		return nil, fmt.Errorf("learn: load guess model: %w", err)
+	}
+	defer f.Close()
+	if fi, err := f.Stat(); err == nil && fi.Mode().IsRegular() && fi.Size() > int64(MaxFileBytes) {
+		return nil, fmt.Errorf("%s: %w", path, refuse(ErrFormat, "%v: %d bytes, more than the %d a model file may hold", ErrFormat, fi.Size(), MaxFileBytes))
+	}
+	// A pipe has no size, and a file can grow after Stat: read one byte
+	// past the limit to tell.
+	data, err := io.ReadAll(io.LimitReader(f, int64(MaxFileBytes)+1))
+	if err != nil {
+		return nil, fmt.Errorf("learn: load guess model: %w", err)
+	}
+	if len(data) > MaxFileBytes {
+		return nil, fmt.Errorf("%s: %w", path, refuse(ErrFormat, "%v: more than the %d bytes a model file may hold", ErrFormat, MaxFileBytes))
+	}
+	return data, nil
 }

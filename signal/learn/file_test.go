@@ -147,6 +147,8 @@ func TestModelFileRefusals(t *testing.T) {
 		{"other feature version", otherVersion(), ErrFeatureVersion, ""},
 		{"wrong input count", wrongInputs(), ErrShape, "shape mismatch: "},
 		{"wrong output count", wrongOutputs(), ErrShape, "shape mismatch: "},
+		// Counted before decoding: two bytes each, a hundred decoded.
+		{"a thousand empty layers", frame(bytes.Repeat([]byte{9<<3 | 2, 0}, 1000)), ErrShape, "shape mismatch: "},
 	}
 	kinds := []error{ErrTruncated, ErrMagic, ErrChecksum, ErrFormat, ErrScenario, ErrFeatureVersion, ErrShape}
 	for _, c := range cases {
@@ -191,5 +193,30 @@ func TestModelFileRefusals(t *testing.T) {
 	}
 	if _, _, err := Load(path, u.m); !errors.Is(err, ErrScenario) {
 		t.Errorf("Load for another scenario: %v", err)
+	}
+}
+
+// A file too large to be a model is refused before it is read.
+func TestLoadRefusesHugeFile(t *testing.T) {
+	h := getFixture(t, "harbor")
+	path := filepath.Join(t.TempDir(), "guess.bgm")
+	fh, err := os.Create(path)
+	if err != nil {
+		t.Fatal(err)
+	}
+	// Sparse: 1 GB on paper, nothing on disk.
+	if _, err := fh.WriteString(Magic); err != nil {
+		t.Fatal(err)
+	}
+	if err := fh.Truncate(1 << 30); err != nil {
+		t.Fatal(err)
+	}
+	fh.Close()
+	n := allocated(func() { _, _, err = Load(path, h.m) })
+	if !errors.Is(err, ErrFormat) || !strings.Contains(err.Error(), path+": malformed guess model: 1073741824 bytes, more than the") {
+		t.Errorf("Load of a 1 GB file: %v", err)
+	}
+	if n > 1<<20 {
+		t.Errorf("refusing the file allocated %d bytes", n)
 	}
 }

@@ -15,6 +15,16 @@
 // or after Horizon steps. By default all boats launch from one dock cell:
 // that is the usual site layout, and the case where boats that do not
 // coordinate all chase the same slick.
+//
+// # Files
+//
+// A harbor file sets Config's fields in YAML (deploy/examples/harbor-tiny.yaml)
+// and is read through sim/config: at most config.MaxFileBytes, parsed in at
+// most config.AllocPerByte bytes per input byte plus config.AllocFixed (the
+// model itself is a few hundred bytes), problems reported as
+// "FILE:LINE: FIELD: message". Every size the file sets is bounded: a grid
+// of at most 1000 x 1000 cells, at most 256 boats (and so launch cells),
+// at most 1000 slicks (and so slick cells), at most 100000 steps.
 package harbor
 
 import (

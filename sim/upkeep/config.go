@@ -4,7 +4,6 @@ import (
 	_ "embed"
 	"fmt"
 	"math"
-	"os"
 	"strconv"
 	"strings"
 
@@ -59,11 +58,21 @@ func Default(robots int) (*Model, error) {
 	return Parse("sites/solar-park.yaml", solarPark, robots)
 }
 
-// Load reads an instance file; robots > 0 overrides the file's robot count.
+// The documented allocation bound of one Parse of n bytes: AllocPerByte*n
+// + AllocFixed. On top of sim/config's bound the model holds n x n hop and
+// next-hop tables, 16 MB at maxSites, and each site's (L+1) x (L+1) chain
+// twice.
+const (
+	AllocPerByte = config.AllocPerByte
+	AllocFixed   = config.AllocFixed + 32<<20
+)
+
+// Load reads an instance file (at most config.MaxFileBytes); robots > 0
+// overrides the file's robot count.
 func Load(path string, robots int) (*Model, error) {
-	data, err := os.ReadFile(path)
+	data, err := config.ReadBytes(path)
 	if err != nil {
-		return nil, fmt.Errorf("scenario file: %w", err)
+		return nil, err
 	}
 	return Parse(path, data, robots)
 }
@@ -354,7 +363,12 @@ func (f *file) start(doc *config.Doc, sp *spec, override int) error {
 			return doc.Errorf("robots", "must be between 1 and %d, got %d", maxRobots, robots)
 		}
 	} else if list {
-		robots = len(names) // a start list alone says how many robots
+		// A start list alone says how many robots there are, so it is held
+		// to the robots field's bounds.
+		robots = len(names)
+		if robots < 1 || robots > maxRobots {
+			return doc.Errorf("start", "lists %d sites, one per robot, but there must be 1 to %d robots", robots, maxRobots)
+		}
 	}
 	if list {
 		switch {

@@ -102,6 +102,11 @@ func TestMalformedFiles(t *testing.T) {
 		{"start list missing sites", valid(nil, "start: [a, x, y]"), `f.yaml:10: start: robots on missing sites: "x", "y"`},
 		{"start list length", valid(nil, "robots: 3", "start: [a, b]"), "f.yaml:11: start: lists 2 sites for 3 robots"},
 		{"start not a name", valid(nil, "start: {a: 1}"), "f.yaml:10: start: want a site name or a list of site names"},
+		// A start list without robots sets the count, so it is bounded too.
+		{"start list empty", valid(nil, "start: []"), "f.yaml:10: start: lists 0 sites, one per robot, but there must be 1 to 256 robots"},
+		{"start list too long", valid(nil, "start: ["+strings.Repeat("a, ", 256)+"a]"), "f.yaml:10: start: lists 257 sites, one per robot, but there must be 1 to 256 robots"},
+		{"alias", valid(map[int]string{2: "level_cost: [0, &c 1, *c]"}), "f.yaml:2: level_cost[2]: aliases (*c) are not supported in scenario files"},
+		{"merge key", valid(map[int]string{5: "  - {<<: {wear: 0.5}, name: b}"}), "f.yaml:5: sites[1]: merge keys (<<) are not supported in scenario files"},
 	}
 	for _, c := range cases {
 		m, err := Parse("f.yaml", []byte(c.src), 0)

@@ -72,6 +72,13 @@
 // problem is reported as "FILE:LINE: FIELD: message". Format writes a model
 // back out in this format.
 //
+// Files are read through sim/config, so a file holds at most
+// config.MaxFileBytes, and everything in it that sizes the model is
+// bounded: at most 1000 sites, levels at most MaxLevels (so chains of at
+// most 9 x 9), at most 256 robots (a start list included), at most one road
+// per pair of sites. Parsing n bytes allocates at most AllocPerByte*n +
+// AllocFixed bytes (FuzzParse holds Parse to it).
+//
 // # Exact mode
 //
 // With "observe: all" every belief is a point mass after each step, so a
