@@ -221,6 +221,8 @@ type Machine struct {
 	stallRun   []int // sequential rounds in a row each robot stalled
 	saidNoLive bool
 
+	armed time.Duration // the last tick asked for by arm
+
 	drops map[turn.DropReason]uint64
 	late  uint64
 }
@@ -362,7 +364,7 @@ func (c *Machine) poll() []Action {
 			c.phase, c.nextAt = pacing, c.now
 		case pacing:
 			if c.now < c.nextAt {
-				return append(acts, Arm{At: c.nextAt})
+				return append(acts, c.arm(c.nextAt)...)
 			}
 			order := c.orderNow()
 			if len(order) == 0 {
@@ -376,12 +378,12 @@ func (c *Machine) poll() []Action {
 			acts = append(acts, c.start(order)...)
 		case collecting:
 			if next, ok := c.settled(); !ok {
-				return append(acts, Arm{At: next})
+				return append(acts, c.arm(next)...)
 			}
 			acts = append(acts, c.close()...)
 		case reporting:
 			if !c.reportsIn() && c.now < c.closeAt+c.cfg.ReportWait {
-				return append(acts, Arm{At: c.closeAt + c.cfg.ReportWait})
+				return append(acts, c.arm(c.closeAt+c.cfg.ReportWait)...)
 			}
 			acts = append(acts, c.file())
 			if c.cfg.Rounds > 0 && c.round >= uint64(c.cfg.Rounds) {
@@ -393,6 +395,16 @@ func (c *Machine) poll() []Action {
 			return acts
 		}
 	}
+}
+
+// arm asks for a tick at at, unless the last one asked for is that one:
+// every event re-polls, and one timer per deadline is enough.
+func (c *Machine) arm(at time.Duration) []Action {
+	if at == c.armed {
+		return nil
+	}
+	c.armed = at
+	return []Action{Arm{At: at}}
 }
 
 func (c *Machine) start(order []int) []Action {
