@@ -22,6 +22,7 @@ import (
 	"baton/agentd/node"
 	"baton/coordinator/clock"
 	"baton/deploy/shell"
+	pb "baton/proto"
 	"baton/signal/learn"
 	"baton/sim/episode"
 	"baton/sim/fleetsum"
@@ -258,6 +259,7 @@ func (f *fleetRun) report(round int) {
 // (hold without one), step the world, report.
 func (f *fleetRun) play(round int) fleetsum.Round {
 	res := fleetsum.Round{Round: round, Decided: make([]int, len(f.bases))}
+	t0 := time.Now()
 	for r, b := range f.bases {
 		v, err := getDecision(f.client, b, round, f.wait)
 		if err == nil {
@@ -274,6 +276,11 @@ func (f *fleetRun) play(round int) fleetsum.Round {
 		if len(v.Guessed) > 0 {
 			res.Guessed++
 		}
+	}
+	if res.LatencyUs == 0 {
+		// No robot saw the close: the round lasted as long as the
+		// software waited for it.
+		res.LatencyUs = uint64(time.Since(t0) / time.Microsecond)
 	}
 	f.u = res.Controls()
 	res.Cost = f.world.Apply(f.u)
@@ -316,7 +323,10 @@ func (o fleetOpts) check(m model.Model) (model.Fleet, error) {
 	if !o.virtual && len(o.virtualOnly) > 0 {
 		return nil, fmt.Errorf("--%s models the virtual fleet's links or compute: add --virtual", o.virtualOnly[0])
 	}
-	if o.link.Loss < 0 || o.link.Loss > 1 {
+	if _, err := pb.NewSubjects(o.prefix, o.fleet); err != nil {
+		return nil, err
+	}
+	if !(o.link.Loss >= 0 && o.link.Loss <= 1) {
 		return nil, fmt.Errorf("--loss %g: want a probability in [0, 1]", o.link.Loss)
 	}
 	if o.link.Hop < 0 || o.link.Jitter < 0 || o.turnTime < 0 {
@@ -398,12 +408,11 @@ exactly what the real fleet decides for the same flags: compare decisions_sha256
 			fmt.Printf("fleet %s: %s, %d robots, %s mode, virtual time (hop %s, jitter %s, loss %g, turn %s)\n",
 				o.fleet, m.Name(), m.Robots(), o.clock.Mode, o.link.Hop, o.link.Jitter, o.link.Loss, o.turnTime)
 		}
-		for done := 0; done < rounds && ctx.Err() == nil; {
-			n := min(10, rounds-done) // check for Ctrl-C between batches
-			if _, err := vf.Run(n, line); err != nil {
+		for sum.Rounds < rounds && ctx.Err() == nil {
+			// Batches of 10, to notice Ctrl-C between them.
+			if _, err := vf.Run(min(10, rounds-sum.Rounds), line); err != nil {
 				return err
 			}
-			done += n
 		}
 		w = vf.World()
 		sum.WallSeconds = time.Since(t0).Seconds()

@@ -16,13 +16,16 @@ import (
 )
 
 // Pending limits of the daemon's subscriptions (their channels' capacity;
-// see shell.Bus). Round starts, closes and report requests come a few per
-// round from one coordinator; decisions come one per robot per round, so
-// 4096 holds 64 rounds of a 64-robot fleet. A message that finds its
-// channel full is counted as dropped ("slow-consumer").
+// see shell.Bus). Round starts and closes come two per round from one
+// coordinator and are served first; decisions come one per robot per
+// round, so 4096 holds 64 rounds of a 64-robot fleet; report requests come
+// once a second while a coordinator gathers, and have their own small
+// channel so a flood of them cannot push round starts out. A message that
+// finds its channel full is counted as dropped ("slow-consumer").
 const (
 	ControlPending  = 256
 	DecisionPending = 4096
+	HelloPending    = 16
 )
 
 // Node is one running daemon: it drives the turn machine from the bus and
@@ -88,10 +91,11 @@ func (n *Node) Run(ctx context.Context) error {
 	s := n.cfg.Subjects
 	control := make(chan *nats.Msg, ControlPending)
 	decisions := make(chan *nats.Msg, DecisionPending)
+	hellos := make(chan *nats.Msg, HelloPending)
 	for _, sub := range []struct {
 		subject string
 		ch      chan *nats.Msg
-	}{{s.Round, control}, {s.Close, control}, {s.Hello, control}, {s.Decision, decisions}} {
+	}{{s.Round, control}, {s.Close, control}, {s.Hello, hellos}, {s.Decision, decisions}} {
 		ss, err := n.bus.ChanSubscribe(sub.subject, sub.ch)
 		if err != nil {
 			return fmt.Errorf("subscribe %s: %w", sub.subject, err)
@@ -120,6 +124,8 @@ func (n *Node) Run(ctx context.Context) error {
 		case msg := <-control:
 			n.receive(msg)
 		case msg := <-decisions:
+			n.receive(msg)
+		case msg := <-hellos:
 			n.receive(msg)
 		case t := <-n.timers:
 			t.Now = n.now()

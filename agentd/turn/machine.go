@@ -73,7 +73,14 @@ type entry struct {
 type early struct {
 	robot   int
 	control int32
+	bad     bool // two different decisions came for this robot: use neither
 }
+
+// conflicted marks, in heard, a robot for which two different decisions
+// came this round: neither is used, the robot is guessed as if unheard.
+// The bus cannot tell a forged decision from a real one; this way a
+// forger can cost a guess but never choose a predecessor's control.
+const conflicted = -2
 
 // Machine is one robot's side of the round protocol. It is not safe for
 // concurrent use; the driver serialises calls.
@@ -308,7 +315,7 @@ func (m *Machine) begin(c current, s Start, newRun, resync bool) []Action {
 			c.round, s.Epoch, ResyncAfter, m.cur.round)})
 	}
 	if newRun {
-		if m.following {
+		if m.following && !resync {
 			acts = append(acts, Note{Text: fmt.Sprintf("a new coordinator run (epoch %d, round %d) replaces run %d at round %d; starting over with its rounds",
 				s.Epoch, c.round, m.epoch, m.cur.round)})
 		}
@@ -349,6 +356,10 @@ func (m *Machine) begin(c current, s Start, newRun, resync bool) []Action {
 	for _, b := range buf {
 		if !match {
 			acts = append(acts, m.drop(DropStale, strconv.Itoa(b.robot), "decision kept for a round that did not start; round %d started", c.round)...)
+			continue
+		}
+		if b.bad {
+			m.heard[b.robot] = conflicted
 			continue
 		}
 		if d := m.admit(b.robot, b.control); d != nil {
@@ -446,8 +457,17 @@ func (m *Machine) onDecision(e GotDecision) []Action {
 	if acts := m.admit(robot, d.Control); acts != nil {
 		return acts
 	}
-	if m.heard[robot] >= 0 {
+	switch h := m.heard[robot]; {
+	case h == int(d.Control) || h == conflicted:
 		return m.drop(DropDuplicate, sender, "second decision from robot %d for round %d", robot, d.Round)
+	case h >= 0:
+		// Two different decisions for one robot: one is forged. Use
+		// neither, unless this robot already decided with the first.
+		used := m.phase != idle && m.phase != waiting && m.cur.pos[robot] < m.k
+		if !used {
+			m.heard[robot] = conflicted
+		}
+		return m.drop(DropDuplicate, sender, "robot %d sent control %d and then %d for round %d: neither is used (one is not the robot's)", robot, h, d.Control, d.Round)
 	}
 	m.heard[robot] = int(d.Control)
 	if m.phase == idle || m.cur.pos[robot] >= m.k {
@@ -491,6 +511,12 @@ func (m *Machine) onOtherRound(d Decision, robot int, sender string) []Action {
 		m.nextEpoch, m.nextRound = d.Epoch, d.Round
 	}
 	if m.nextSeen[robot] {
+		for i := range m.next {
+			if b := &m.next[i]; b.robot == robot && b.control != d.Control && !b.bad {
+				b.bad = true
+				return append(acts, m.drop(DropDuplicate, sender, "robot %d sent control %d and then %d for round %d: neither is used (one is not the robot's)", robot, b.control, d.Control, d.Round)...)
+			}
+		}
 		return append(acts, m.drop(DropDuplicate, sender, "second decision from robot %d for round %d", robot, d.Round)...)
 	}
 	m.nextSeen[robot] = true
@@ -575,6 +601,15 @@ func (m *Machine) onClose(e GotClose) []Action {
 	}
 	if ent.closed {
 		return m.drop(DropDuplicate, who, "round %d already closed", c.Round)
+	}
+	if own := m.cfg.Robot; !held[own] && (!ent.decided || ent.control != int(c.Controls[own])) {
+		// The coordinator takes a robot's control only from its decision:
+		// a close that says otherwise is not the coordinator's, and a
+		// robot never acts on a control it did not decide.
+		if !ent.decided {
+			return m.drop(DropContradicts, who, "round %d: the close gives this robot control %d, but it decided nothing", c.Round, c.Controls[own])
+		}
+		return m.drop(DropContradicts, who, "round %d: the close gives this robot control %d, but it decided %d", c.Round, c.Controls[own], ent.control)
 	}
 	ent.closed, ent.closeCtl, ent.held, ent.latency = true, int(c.Controls[m.cfg.Robot]), held[m.cfg.Robot], c.LatencyUs
 	ent.stalled = int(c.Stalled) - 1

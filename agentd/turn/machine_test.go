@@ -405,11 +405,20 @@ func TestBadCloses(t *testing.T) {
 			t.Fatalf("%s: closed by a bad close: %+v", c.name, v)
 		}
 	}
-	if acts := r.step(cl(5, nil)); len(acts) != 0 {
+	// A close that gives this robot a control it did not decide is not the
+	// coordinator's: the robot never acts on it.
+	dropOf(t, r.step(cl(5, nil)), DropContradicts)
+	r.step(Computed{Now: 1, Epoch: 7, Round: 5, Control: 3})
+	dropOf(t, r.step(cl(5, nil)), DropContradicts)
+	if v := r.m.View(2, 5, true); v.Closed {
+		t.Fatalf("closed by a contradicting close: %+v", v)
+	}
+	agree := cl(5, func(c *Close) { c.Controls[1] = 3 })
+	if acts := r.step(agree); len(acts) != 0 {
 		t.Fatal(acts)
 	}
-	dropOf(t, r.step(cl(5, nil)), DropDuplicate)
-	if v := r.m.View(2, 5, true); !v.Closed || v.Control != 2 || v.Action != "S" || v.Hold {
+	dropOf(t, r.step(agree), DropDuplicate)
+	if v := r.m.View(2, 5, true); !v.Closed || v.Control != 3 || v.Action != "E" || v.Hold {
 		t.Fatalf("%+v", v)
 	}
 	// A spray of future closes keeps nothing.
@@ -425,6 +434,7 @@ func TestBadCloses(t *testing.T) {
 func TestLastControls(t *testing.T) {
 	r := newRig(t)
 	r.step(GotStart{Now: 0, Msg: r.start(7, 5, Parallel)})
+	r.step(Computed{Now: 1, Epoch: 7, Round: 5, Control: 2})
 	r.step(GotClose{Now: 1, Msg: Close{Fleet: fleet, Epoch: 7, Round: 5, Controls: []int32{1, 2, 0, 4}, Held: []uint32{2}}})
 	c := only[Compute](t, r.step(GotStart{Now: 2, Msg: r.start(7, 6, Parallel)}))
 	if !slices.Equal(c.Last, []int{1, 2, -1, 4}) {
@@ -527,4 +537,46 @@ func TestViews(t *testing.T) {
 	if ok, why := r.m.Health(late); ok || !strings.Contains(why, "holding") {
 		t.Fatal(why)
 	}
+}
+
+// Two different decisions for one robot in one round: one is forged, and
+// neither is used; the robot is guessed as if unheard.
+func TestConflictingDecisions(t *testing.T) {
+	r := newRig(t)
+	// For the next round, before it starts.
+	r.step(GotStart{Now: 0, Msg: r.start(7, 5, Hybrid)})
+	r.step(heard(1, dec(7, 6, 0, 3)))
+	dropOf(t, r.step(heard(1, dec(7, 6, 0, 2))), DropDuplicate)
+	acts := r.step(GotStart{Now: time.Second, Msg: r.start(7, 6, Hybrid)})
+	if len(of[Compute](acts)) != 0 {
+		t.Fatalf("a conflicted predecessor is not heard: %+v", acts)
+	}
+	c := only[Compute](t, r.step(Timer{Now: time.Second + 100*time.Millisecond, Epoch: 7, Round: 6}))
+	if c.Known[0] != -1 || !slices.Equal(c.Guess, []int{0}) {
+		t.Fatalf("%+v", c)
+	}
+	// In the current round, while waiting.
+	r2 := newRig(t)
+	s := r2.start(7, 5, Hybrid)
+	s.Order = []uint32{0, 2, 1, 3}
+	r2.step(GotStart{Msg: s})
+	r2.step(heard(1, dec(7, 5, 0, 1)))
+	dropOf(t, r2.step(heard(2, dec(7, 5, 0, 4))), DropDuplicate)
+	if acts := r2.step(heard(3, dec(7, 5, 2, 1))); len(of[Compute](acts)) != 0 {
+		t.Fatalf("computed without robot 0: %+v", acts)
+	}
+	c = only[Compute](t, r2.step(Timer{Now: 200 * time.Millisecond, Epoch: 7, Round: 5}))
+	if c.Known[0] != -1 || c.Known[2] != 1 || !slices.Equal(c.Guess, []int{0}) {
+		t.Fatalf("%+v", c)
+	}
+}
+
+func of[T Action](acts []Action) []T {
+	var out []T
+	for _, a := range acts {
+		if v, ok := a.(T); ok {
+			out = append(out, v)
+		}
+	}
+	return out
 }

@@ -165,13 +165,14 @@ const (
 	DropDuplicate    DropReason = "duplicate"      // a second copy for the same round and robot
 	DropNotInOrder   DropReason = "not-in-order"   // a robot that is not in this round's order
 	DropTooFrequent  DropReason = "too-frequent"   // a report request within HelloGap of the last one answered
+	DropContradicts  DropReason = "contradicts"    // a close that gives this robot a control it did not decide
 	DropSlowConsumer DropReason = "slow-consumer"  // lost in the NATS client because the daemon fell behind
 )
 
 // Reasons lists every drop reason, for counters that start at zero.
 func Reasons() []DropReason {
 	return []DropReason{DropMalformed, DropOversize, DropBounds, DropRange, DropForeign, DropScenario,
-		DropSubject, DropStale, DropFuture, DropDuplicate, DropNotInOrder, DropTooFrequent, DropSlowConsumer}
+		DropSubject, DropStale, DropFuture, DropDuplicate, DropNotInOrder, DropTooFrequent, DropContradicts, DropSlowConsumer}
 }
 
 // Drop reports a message that was not acted on, with why. Drivers count

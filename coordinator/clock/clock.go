@@ -144,7 +144,7 @@ type Record struct {
 	Decisions []Decision `json:"decisions"`
 	LatencyUs uint64     `json:"latency_us"`
 	Reports   int        `json:"reports"`
-	Missing   []int      `json:"missing_reports,omitempty"`
+	Missing   []int      `json:"missing_reports"`
 	Stage     float64    `json:"stage_cost"`
 	Snapshot  *StateWire `json:"state,omitempty"`
 	// Interrupted: the run stopped before this round's reports were filed.
@@ -209,6 +209,7 @@ type Machine struct {
 	mode      turn.Mode
 	controls  []int // valid controls per robot in the round's state
 	got       []*turn.Decision
+	conflict  []bool // robots with two different decisions this round
 	lastAt    time.Duration
 	rec       Record
 	closeAt   time.Duration
@@ -220,6 +221,7 @@ type Machine struct {
 	heldRun    []int // rounds in a row each robot missed its own turn
 	stallRun   []int // sequential rounds in a row each robot stalled
 	saidNoLive bool
+	saidNewer  bool
 
 	armed time.Duration // the last tick asked for by arm
 
@@ -233,7 +235,7 @@ func New(cfg Config) *Machine {
 	mon := turn.NewLinkMonitor(0, 0, 0)
 	return &Machine{cfg: cfg, m: cfg.Model, robots: robots, monitor: mon, drops: map[turn.DropReason]uint64{},
 		gathered: make([]*turn.Report, robots), reports: make([]*turn.Report, robots), positions: make([]*turn.Report, robots),
-		got: make([]*turn.Decision, robots), heldRun: make([]int, robots), stallRun: make([]int, robots),
+		got: make([]*turn.Decision, robots), conflict: make([]bool, robots), heldRun: make([]int, robots), stallRun: make([]int, robots),
 		scratch: cfg.Model.NewState()}
 }
 
@@ -434,6 +436,7 @@ func (c *Machine) start(order []int) []Action {
 		c.controls[r] = c.m.NumControls(c.x, r)
 	}
 	clear(c.got)
+	clear(c.conflict)
 	clear(c.reports)
 	ints, reals := c.m.Flatten(c.x, nil, nil)
 	c.rec = Record{Epoch: c.cfg.Epoch, Round: c.round, Mode: c.mode.String(), Guess: c.cfg.Guess, Model: c.model,
@@ -580,7 +583,7 @@ func (c *Machine) file() Filed {
 		}
 	}
 	c.rec.Stage = c.m.Advance(c.x, u)
-	c.rec.Reports = 0
+	c.rec.Reports, c.rec.Missing = 0, []int{}
 	for r, o := range c.reports {
 		if o != nil {
 			c.rec.Reports++
@@ -638,7 +641,9 @@ func (c *Machine) onDecision(e GotDecision) []Action {
 		return c.drop(turn.DropMalformed, who, "round 0: rounds start at 1")
 	case d.Epoch < c.cfg.Epoch:
 		return c.drop(turn.DropStale, who, "decision from an older coordinator run (epoch %d, this is %d)", d.Epoch, c.cfg.Epoch)
-	case d.Epoch > c.cfg.Epoch || d.Round > c.round:
+	case d.Epoch > c.cfg.Epoch:
+		return append(c.newer(d.Epoch), c.drop(turn.DropFuture, who, "decision from a newer coordinator run (epoch %d, this is %d): is another coordinator running?", d.Epoch, c.cfg.Epoch)...)
+	case d.Round > c.round:
 		return c.drop(turn.DropFuture, who, "decision for round %d of run %d; this is round %d of run %d", d.Round, d.Epoch, c.round, c.cfg.Epoch)
 	case d.Round < c.round:
 		return c.drop(turn.DropStale, who, "decision for round %d during round %d", d.Round, c.round)
@@ -652,8 +657,18 @@ func (c *Machine) onDecision(e GotDecision) []Action {
 		return c.drop(turn.DropNotInOrder, who, "robot %d is not in round %d's order", r, c.round)
 	case d.Control < 0 || int(d.Control) >= c.controls[r]:
 		return c.drop(turn.DropRange, who, "control %d is outside 0..%d for robot %d", d.Control, c.controls[r]-1, r)
-	case c.got[r] != nil:
+	case c.conflict[r]:
+		return c.drop(turn.DropDuplicate, who, "another decision from robot %d in round %d, whose decisions conflict", r, c.round)
+	case c.got[r] != nil && c.got[r].Control == d.Control:
 		return c.drop(turn.DropDuplicate, who, "second decision from robot %d in round %d", r, c.round)
+	case c.got[r] != nil:
+		// One of the two is forged: take neither, and the robot holds
+		// (its own machine refuses a close that gives it a control it
+		// did not decide).
+		first := c.got[r].Control
+		c.got[r], c.conflict[r] = nil, true
+		c.rec.Decisions = slices.DeleteFunc(c.rec.Decisions, func(x Decision) bool { return x.Robot == r })
+		return c.drop(turn.DropDuplicate, who, "robot %d sent control %d and then %d for round %d: neither is used, the robot holds", r, first, d.Control, c.round)
 	}
 	for _, l := range [][]uint32{d.Heard, d.Guessed} {
 		for _, p := range l {
@@ -686,7 +701,7 @@ func (c *Machine) onReport(e GotReport) []Action {
 	case o.Applied < 0 || int(o.Applied) >= c.m.MaxControls():
 		return c.drop(turn.DropRange, who, "applied control %d is outside 0..%d", o.Applied, c.m.MaxControls()-1)
 	case o.Epoch > c.cfg.Epoch:
-		return c.drop(turn.DropFuture, who, "report from a newer coordinator run (epoch %d, this is %d): is another coordinator running?", o.Epoch, c.cfg.Epoch)
+		return append(c.newer(o.Epoch), c.drop(turn.DropFuture, who, "report from a newer coordinator run (epoch %d, this is %d): is another coordinator running?", o.Epoch, c.cfg.Epoch)...)
 	}
 	r := int(o.Robot)
 	position := o.Round == 0 || o.Epoch != c.cfg.Epoch
@@ -713,6 +728,17 @@ func (c *Machine) onReport(e GotReport) []Action {
 		c.positions[r] = &o // where the robot is: taken at the next filing
 	}
 	return nil
+}
+
+// newer warns once that robots follow a newer run than this one: another
+// coordinator for the fleet is running (or someone forges its messages).
+func (c *Machine) newer(epoch uint64) []Action {
+	if c.saidNewer {
+		return nil
+	}
+	c.saidNewer = true
+	return []Action{Note{Warn: true, Robot: -1, Round: c.round, Text: fmt.Sprintf(
+		"messages from a newer coordinator run (epoch %d, this is %d): is another coordinator running for this fleet? (said once)", epoch, c.cfg.Epoch)}}
 }
 
 func orEmpty(s []uint32) []uint32 {

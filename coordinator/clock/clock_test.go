@@ -307,10 +307,9 @@ func TestSequentialStall(t *testing.T) {
 
 func TestBadDecisions(t *testing.T) {
 	cfg := config(t, 3)
-	cfg.Order = Order{0, 1}
 	r := newRig(t, cfg)
 	r.step(Begin{Now: 0})
-	r.step(Members{Now: 0, Alive: []int{0, 1, 2}})
+	r.step(Members{Now: 0, Alive: []int{0, 1}}) // robot 2 is not in the order
 	for i := range 3 {
 		r.report(i, 0, 0, 11, 0)
 	}
@@ -505,6 +504,7 @@ func TestConfigValidate(t *testing.T) {
 		{func(c *Config) { c.GatherWait = -1 }, "--first-report-wait"},
 		{func(c *Config) { c.Order = Order{0, 0} }, "--order"},
 		{func(c *Config) { c.Order = Order{5} }, "--order"},
+		{func(c *Config) { c.Order = Order{0, 1} }, "--order 0,1: lists 2 of the 3 robots"},
 	} {
 		cfg := config(t, 3)
 		c.mutate(&cfg)
@@ -525,5 +525,44 @@ func TestConfigValidate(t *testing.T) {
 	}
 	if err := fs.Parse([]string{"--mode", "fast"}); err == nil {
 		t.Fatal("bad mode accepted")
+	}
+}
+
+// Two different decisions for one robot: neither is used, the robot holds;
+// the close never carries a control the robot did not send.
+func TestConflictingDecisions(t *testing.T) {
+	r := newRig(t, config(t, 3))
+	r.gathered()
+	r.decide(0, 1, 3)
+	dropped(t, r.decide(0, 1, 1), turn.DropDuplicate)
+	dropped(t, r.decide(0, 1, 3), turn.DropDuplicate)
+	r.decide(1, 1, 0)
+	acts := r.decide(2, 1, 0)
+	if len(of[SendClose](acts)) != 0 {
+		t.Fatal("closed before robot 0's deadline though its decisions conflict")
+	}
+	cl := one[SendClose](t, r.at(100*time.Millisecond)).Msg
+	if !slices.Equal(cl.Held, []uint32{0}) || cl.Controls[0] != 0 {
+		t.Fatalf("%+v", cl)
+	}
+}
+
+// Robots following a newer run than this coordinator's: said once.
+func TestNewerRunWarned(t *testing.T) {
+	r := newRig(t, config(t, 3))
+	r.gathered()
+	for range 3 {
+		acts := r.step(GotReport{Now: r.now, Subject: 1, Msg: turn.Report{Fleet: "yard", Epoch: epoch + 9, Round: 1, Robot: 1}})
+		dropped(t, acts, turn.DropFuture)
+	}
+	notes := of[Note](r.acts)
+	n := 0
+	for _, x := range notes {
+		if strings.Contains(x.Text, "another coordinator running") {
+			n++
+		}
+	}
+	if n != 1 {
+		t.Fatalf("%d warnings: %+v", n, notes)
 	}
 }

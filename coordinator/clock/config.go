@@ -109,6 +109,9 @@ func (c Config) Validate() error {
 		}
 		seen[r] = true
 	}
+	if c.Order != nil && len(c.Order) != m {
+		return fmt.Errorf("--order %s: lists %d of the %d robots; give every robot once (robots that are not alive are skipped anyway)", c.Order, len(c.Order), m)
+	}
 	return nil
 }
 
@@ -144,7 +147,7 @@ func (c *Config) RegisterFlags(fs *flag.FlagSet) {
 	fs.IntVar(&c.Rounds, "rounds", c.Rounds, "stop after this many rounds (0: run until stopped)")
 	fs.DurationVar(&c.ReportWait, "report-wait", c.ReportWait, "how long to wait for robots' reports after a round")
 	fs.DurationVar(&c.GatherWait, "first-report-wait", c.GatherWait, "before round 1: start without the robots that have not reported after this long (all reported: at once)")
-	fs.Var(&c.Order, "order", "preferred turn order, e.g. 2,0,1 (default 0..m-1)")
+	fs.Var(&c.Order, "order", "preferred turn order, every robot once, e.g. 2,0,1 (default 0..m-1)")
 }
 
 // RegisterSeed binds --seed to the fleet seed.

@@ -106,8 +106,8 @@ type Hub struct {
 }
 
 // New prepares a hub on a bus. cfg.Clock must pass Validate; an epoch of 0
-// is set from the wall clock (nanoseconds), so a restarted coordinator's is
-// larger.
+// is set from the wall clock (microseconds: larger for a restarted
+// coordinator, and exact in JSON readers that hold numbers as doubles).
 func New(cfg Config, bus shell.Bus) *Hub {
 	if cfg.Log == nil {
 		cfg.Log = zap.NewNop()
@@ -117,7 +117,7 @@ func New(cfg Config, bus shell.Bus) *Hub {
 	}
 	now := time.Now()
 	if cfg.Clock.Epoch == 0 {
-		cfg.Clock.Epoch = uint64(now.UnixNano())
+		cfg.Clock.Epoch = uint64(now.UnixMicro())
 	}
 	return &Hub{cfg: cfg, bus: bus, machine: clock.New(cfg.Clock), start: now, timers: make(chan struct{}, 1),
 		models: make(chan uint64, 4), done: make(chan struct{}), drops: shell.Drops{Log: cfg.Log, Counter: cfg.Metrics.Dropped}}

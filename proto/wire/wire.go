@@ -49,12 +49,22 @@ func Reason(err error) turn.DropReason {
 
 var unmarshal = proto.UnmarshalOptions{DiscardUnknown: true}
 
-func decode(what string, data []byte, m proto.Message) error {
+// fleeted is every protocol message: each names its fleet.
+type fleeted interface {
+	proto.Message
+	GetFleet() string
+}
+
+func decode(what string, data []byte, m fleeted) error {
 	if len(data) > turn.MaxMessageBytes {
 		return &Error{turn.DropOversize, fmt.Errorf("%s of %d bytes, over %d", what, len(data), turn.MaxMessageBytes)}
 	}
 	if err := unmarshal.Unmarshal(data, m); err != nil {
 		return &Error{turn.DropMalformed, fmt.Errorf("%s does not decode: %v", what, err)}
+	}
+	if m.GetFleet() == "" {
+		// Empty bytes decode to an empty message: that is no message.
+		return &Error{turn.DropMalformed, fmt.Errorf("%s names no fleet", what)}
 	}
 	return nil
 }

@@ -87,6 +87,8 @@ type Fleet struct {
 	waitEnd time.Duration
 
 	results []fleetsum.Round
+	target  int // Run stops filing rounds here
+	started time.Duration
 	onRound func(fleetsum.Round)
 	compute time.Duration // wall time in rollout and guesses
 	events  int
@@ -162,6 +164,10 @@ func (f *Fleet) Run(rounds int, onRound func(fleetsum.Round)) ([]fleetsum.Round,
 		f.begin()
 	}
 	target := len(f.results) + rounds
+	f.target = target
+	for _, r := range f.robots {
+		f.software(r) // answers that waited for the previous Run's end
+	}
 	// Every round ends within a bounded virtual time; past this the fleet
 	// is stuck (everything lost, say), not slow.
 	c := f.cfg.Clock
@@ -436,6 +442,9 @@ func (f *Fleet) softDeadline(round int) func() {
 }
 
 func (f *Fleet) maybeStep() {
+	if len(f.results) >= f.target {
+		return
+	}
 	for _, a := range f.answers {
 		if a == nil {
 			return
@@ -454,6 +463,11 @@ func (f *Fleet) maybeStep() {
 		}
 		res.LatencyUs = max(res.LatencyUs, v.LatencyUs)
 	}
+	if res.LatencyUs == 0 {
+		// No robot saw the close: the round lasted as long as the
+		// software waited for it.
+		res.LatencyUs = uint64((f.now - f.started) / time.Microsecond)
+	}
 	u := res.Controls()
 	res.Cost = f.world.Apply(u)
 	f.results = append(f.results, res)
@@ -463,7 +477,7 @@ func (f *Fleet) maybeStep() {
 	done := f.round
 	f.round++
 	f.answers = make([]*turn.View, len(f.robots))
-	f.waitEnd = f.now + f.cfg.Wait
+	f.waitEnd, f.started = f.now+f.cfg.Wait, f.now
 	f.at(f.waitEnd, f.softDeadline(f.round))
 	for i, r := range f.robots {
 		f.observe(r, uint64(done), u[i])
