@@ -1,7 +1,7 @@
 package node
 
 import (
-	"runtime"
+	"baton/sim/fuzzcheck"
 	"strings"
 	"testing"
 
@@ -32,11 +32,8 @@ func FuzzObservationBody(f *testing.F) {
 	f.Fuzz(func(t *testing.T, body []byte) {
 		var rep Report
 		var err error
-		var a, b runtime.MemStats
-		runtime.ReadMemStats(&a)
-		rep, err = ParseReport(body)
-		runtime.ReadMemStats(&b)
-		if n := b.TotalAlloc - a.TotalAlloc; n > uint64(32*len(body)+1<<20) || n > maxObservationAlloc {
+		n := fuzzcheck.Allocated(func() { rep, err = ParseReport(body) })
+		if n > uint64(32*len(body)+1<<20) || n > maxObservationAlloc {
 			t.Fatalf("%d-byte body allocated %d bytes", len(body), n)
 		}
 		if err != nil {

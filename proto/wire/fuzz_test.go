@@ -1,7 +1,7 @@
 package wire
 
 import (
-	"runtime"
+	"baton/sim/fuzzcheck"
 	"testing"
 	"time"
 
@@ -81,15 +81,6 @@ func seeds(f *testing.F) {
 	f.Add(kindStart, make([]byte, turn.MaxMessageBytes+1))
 }
 
-// allocated runs fn and returns the bytes it allocated.
-func allocated(fn func()) uint64 {
-	var a, b runtime.MemStats
-	runtime.ReadMemStats(&a)
-	fn()
-	runtime.ReadMemStats(&b)
-	return b.TotalAlloc - a.TotalAlloc
-}
-
 func checkAlloc(t *testing.T, what string, data []byte, n uint64) {
 	t.Helper()
 	if limit := uint64(AllocPerByte*len(data) + AllocFixed); n > limit {
@@ -122,7 +113,7 @@ func FuzzRobotReceives(f *testing.F) {
 		m := robotRig(t)
 		var ev turn.Event
 		var err error
-		n := allocated(func() {
+		n := fuzzcheck.Allocated(func() {
 			switch kind % kinds {
 			case kindStart:
 				var s turn.Start
@@ -183,7 +174,7 @@ func FuzzCoordinatorReceives(f *testing.F) {
 		c := coordRig(t)
 		var ev clock.Event
 		var err error
-		n := allocated(func() {
+		n := fuzzcheck.Allocated(func() {
 			if kind%2 == 0 {
 				var d turn.Decision
 				d, err = Decision(data)

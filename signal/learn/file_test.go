@@ -1,6 +1,7 @@
 package learn
 
 import (
+	"baton/sim/fuzzcheck"
 	"bytes"
 	"crypto/sha256"
 	"encoding/binary"
@@ -212,7 +213,7 @@ func TestLoadRefusesHugeFile(t *testing.T) {
 		t.Fatal(err)
 	}
 	fh.Close()
-	n := allocated(func() { _, _, err = Load(path, h.m) })
+	n := fuzzcheck.Allocated(func() { _, _, err = Load(path, h.m) })
 	if !errors.Is(err, ErrFormat) || !strings.Contains(err.Error(), path+": malformed guess model: 1073741824 bytes, more than the") {
 		t.Errorf("Load of a 1 GB file: %v", err)
 	}

@@ -1,12 +1,12 @@
 package learn
 
 import (
+	"baton/sim/fuzzcheck"
 	"bytes"
 	"encoding/binary"
 	"errors"
 	"math"
 	"reflect"
-	"runtime"
 	"testing"
 
 	"google.golang.org/protobuf/encoding/protowire"
@@ -115,15 +115,6 @@ func bodySeeds(tb testing.TB, good []byte) [][]byte {
 	}
 }
 
-// allocated runs fn and returns the bytes it allocated.
-func allocated(fn func()) uint64 {
-	var a, b runtime.MemStats
-	runtime.ReadMemStats(&a)
-	fn()
-	runtime.ReadMemStats(&b)
-	return b.TotalAlloc - a.TotalAlloc
-}
-
 var fileErrors = []error{ErrTruncated, ErrMagic, ErrChecksum, ErrFormat, ErrScenario, ErrFeatureVersion, ErrShape}
 
 // No file panics, every refusal has exactly one kind, decoding stays within
@@ -160,7 +151,7 @@ func checkFile(t *testing.T, data []byte, fixtures ...*fixture) {
 	var n *Net
 	var meta Meta
 	var err error
-	used := allocated(func() { n, meta, err = Unmarshal(data) })
+	used := fuzzcheck.Allocated(func() { n, meta, err = Unmarshal(data) })
 	if limit := uint64(AllocPerByte*len(data) + AllocFixed); used > limit {
 		t.Fatalf("Unmarshal of %d bytes allocated %d, over the documented %d", len(data), used, limit)
 	}
@@ -179,7 +170,7 @@ func checkFile(t *testing.T, data []byte, fixtures ...*fixture) {
 	}
 	for _, fx := range fixtures {
 		var bound *Net
-		used := allocated(func() { bound, _, err = Check(data, fx.m) })
+		used := fuzzcheck.Allocated(func() { bound, _, err = Check(data, fx.m) })
 		if limit := uint64(AllocPerByte*len(data) + AllocFixed); used > limit {
 			t.Fatalf("Check of %d bytes allocated %d, over the documented %d", len(data), used, limit)
 		}

@@ -1,6 +1,7 @@
 package config
 
 import (
+	"baton/sim/fuzzcheck"
 	"os"
 	"path/filepath"
 	"strings"
@@ -96,7 +97,7 @@ func TestReadFileSizeLimit(t *testing.T) {
 		t.Fatal(err)
 	}
 	fh.Close()
-	n := allocated(func() { _, err = ReadFile(big, &v) })
+	n := fuzzcheck.Allocated(func() { _, err = ReadFile(big, &v) })
 	want := big + ": 1073741824 bytes, more than the 1048576-byte limit for scenario files (config.MaxFileBytes)"
 	if err == nil || err.Error() != want {
 		t.Errorf("err = %v\nwant %s", err, want)

@@ -1,8 +1,8 @@
 package config
 
 import (
+	"baton/sim/fuzzcheck"
 	"fmt"
-	"runtime"
 	"strings"
 	"testing"
 
@@ -112,15 +112,6 @@ func genKeys(n int) string {
 	return b.String()
 }
 
-// allocated runs fn and returns the bytes it allocated.
-func allocated(fn func()) uint64 {
-	var a, b runtime.MemStats
-	runtime.ReadMemStats(&a)
-	fn()
-	runtime.ReadMemStats(&b)
-	return b.TotalAlloc - a.TotalAlloc
-}
-
 // No input panics, every problem names the file, and a parse stays within
 // the documented allocation bound.
 func FuzzParse(f *testing.F) {
@@ -140,7 +131,7 @@ func checkParse(t *testing.T, data []byte) {
 	var dst scenario
 	var doc *Doc
 	var err error
-	n := allocated(func() { doc, err = Parse("f.yaml", data, &dst) })
+	n := fuzzcheck.Allocated(func() { doc, err = Parse("f.yaml", data, &dst) })
 	if limit := uint64(AllocPerByte*len(data) + AllocFixed); n > limit {
 		t.Fatalf("parsing %d bytes allocated %d, over the documented %d", len(data), n, limit)
 	}

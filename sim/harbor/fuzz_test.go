@@ -1,8 +1,8 @@
 package harbor
 
 import (
+	"baton/sim/fuzzcheck"
 	"os"
-	"runtime"
 	"strings"
 	"testing"
 
@@ -52,15 +52,6 @@ var parseSeeds = []string{
 	"width: [4\n",
 }
 
-// allocated runs fn and returns the bytes it allocated.
-func allocated(fn func()) uint64 {
-	var a, b runtime.MemStats
-	runtime.ReadMemStats(&a)
-	fn()
-	runtime.ReadMemStats(&b)
-	return b.TotalAlloc - a.TotalAlloc
-}
-
 // No file panics, every problem names the file, a parse stays within the
 // documented allocation bound, and whatever parses is a harbor the model
 // can start and step.
@@ -79,7 +70,7 @@ func FuzzParse(f *testing.F) {
 	f.Fuzz(func(t *testing.T, data []byte, robots int) {
 		var m *Model
 		var err error
-		n := allocated(func() { m, err = Parse("h.yaml", data, robots) })
+		n := fuzzcheck.Allocated(func() { m, err = Parse("h.yaml", data, robots) })
 		if limit := uint64(config.AllocPerByte*len(data) + config.AllocFixed); n > limit {
 			t.Fatalf("parsing %d bytes allocated %d, over the documented %d", len(data), n, limit)
 		}

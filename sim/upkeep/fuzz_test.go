@@ -1,10 +1,10 @@
 package upkeep
 
 import (
+	"baton/sim/fuzzcheck"
 	"fmt"
 	"os"
 	"reflect"
-	"runtime"
 	"strings"
 	"testing"
 
@@ -62,15 +62,6 @@ var parseSeeds = []string{
 	"width: 4\n",
 }
 
-// allocated runs fn and returns the bytes it allocated.
-func allocated(fn func()) uint64 {
-	var a, b runtime.MemStats
-	runtime.ReadMemStats(&a)
-	fn()
-	runtime.ReadMemStats(&b)
-	return b.TotalAlloc - a.TotalAlloc
-}
-
 // No file panics, every problem names the file, a parse stays within the
 // documented allocation bound, and whatever parses is a model that Format
 // writes back to itself and that can start and step.
@@ -122,7 +113,7 @@ func TestParseLargeInputs(t *testing.T) {
 func checkParse(t *testing.T, data []byte, robots int) {
 	var m *Model
 	var err error
-	n := allocated(func() { m, err = Parse("u.yaml", data, robots) })
+	n := fuzzcheck.Allocated(func() { m, err = Parse("u.yaml", data, robots) })
 	if limit := uint64(AllocPerByte*len(data) + AllocFixed); n > limit {
 		t.Fatalf("parsing %d bytes allocated %d, over the documented %d", len(data), n, limit)
 	}
