@@ -188,14 +188,13 @@ type Recompute struct {
 	fallback Source
 	max      int
 
-	d     *decide.Decider
-	cfg   decide.Config
+	dec   decide.Reusing
 	known []int
 }
 
 // NewRecompute returns recompute for m; fallback must not be nil.
 func NewRecompute(m model.Model, fallback Source, maxRecompute int) *Recompute {
-	return &Recompute{m: m, fallback: fallback, max: maxRecompute, known: make([]int, m.Robots())}
+	return &Recompute{m: m, fallback: fallback, max: maxRecompute, known: make([]int, m.Robots()), dec: decide.Reusing{M: m}}
 }
 
 func (*Recompute) Name() string { return "recompute" }
@@ -215,16 +214,13 @@ func (r *Recompute) Fill(c *Context, missing []int, out []int) {
 			r.fallback.Fill(c, missing[i:i+1], out)
 			continue
 		}
-		if r.d == nil || c.Decide != r.cfg {
-			r.d, r.cfg = decide.New(r.m, c.Decide), c.Decide
-		}
 		for p := range r.known {
 			r.known[p] = -1
 		}
 		for _, p := range c.Order[:k] {
 			r.known[p] = out[p]
 		}
-		out[j], _ = r.d.Turn(c.X, j, r.known, decide.TurnSeed(c.Seed, int(c.Round), j))
+		out[j], _ = r.dec.Turn(c.X, j, r.known, decide.TurnSeed(c.Seed, int(c.Round), j), c.Decide)
 	}
 }
 

@@ -4,6 +4,7 @@ import (
 	"bufio"
 	"context"
 	"encoding/json"
+	"fmt"
 	"io"
 	"os"
 	"regexp"
@@ -95,7 +96,7 @@ func TestHostileMessages(t *testing.T) {
 	data, err = wire.EncodeReport(turn.Report{Fleet: "test", Epoch: rec.Epoch, Round: 2, Robot: 2, Position: 0})
 	send(subj.ObsOf(0), data, err)
 	// A report request from a run older than the one followed.
-	data, err = wire.EncodeHello(turn.Hello{Fleet: "test", Epoch: rec.Epoch - 1})
+	data, err = wire.EncodeHello(turn.Hello{Fleet: "test", Epoch: rec.Epoch - 1, Sender: "intruder-hello"})
 	send(subj.Hello, data, err)
 	if err := nc.Flush(); err != nil {
 		t.Fatal(err)
@@ -108,7 +109,7 @@ func TestHostileMessages(t *testing.T) {
 	}
 	const robotDrops = "baton_messages_dropped_total"
 	for r, b := range f.bases {
-		for _, reason := range []string{"out-of-bounds", "future", "out-of-range", "wrong-subject", "stale"} {
+		for _, reason := range []string{"out-of-bounds", "future", "out-of-range", "wrong-subject"} {
 			want := 1.0
 			if reason == "future" {
 				want = 2 // the far-future round start and the close of round 500
@@ -116,6 +117,14 @@ func TestHostileMessages(t *testing.T) {
 			if got := metric(t, f, b, robotDrops, reason); got < want {
 				t.Errorf("agentd %d counted %g %q drops, want at least %g", r, got, reason, want)
 			}
+		}
+	}
+	// Stale messages also come in normal traffic: find this one in the log
+	// (each daemon logs the first drop of each reason and sender).
+	for r := range f.bases {
+		b, _ := os.ReadFile(fmt.Sprintf("%s/agentd-%d.log", f.o.logDir, r))
+		if !strings.Contains(string(b), `"reason": "stale", "sender": "intruder-hello"`) {
+			t.Errorf("agentd %d did not drop the old run's report request as stale:\n%s", r, b)
 		}
 	}
 	coord := "http://" + f.chttp

@@ -334,3 +334,20 @@ func equal(a, b []int) bool {
 	}
 	return true
 }
+
+// Reusing keeps one Decider for turns of varying effort, rebuilding it only
+// when the effort changes (a fleet's stays the same round after round). Not
+// safe for concurrent use.
+type Reusing struct {
+	M   model.Model
+	d   *Decider
+	cfg Config
+}
+
+// Turn is Decider.Turn with the Decider for cfg.
+func (r *Reusing) Turn(x model.State, robot int, known []int, seed uint64, cfg Config) (int, Stats) {
+	if r.d == nil || cfg != r.cfg {
+		r.d, r.cfg = New(r.M, cfg), cfg
+	}
+	return r.d.Turn(x, robot, known, seed)
+}

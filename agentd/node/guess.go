@@ -23,35 +23,20 @@ type Computer interface {
 	Turn(x model.State, r int, known []int, seed uint64, p turn.Params) int
 }
 
-// Rollout is the real Computer: one Decider, rebuilt when the fleet's
-// parameters change, used by one turn at a time.
+// Rollout is the real Computer.
 type Rollout struct {
-	M model.Model
-
-	mu     sync.Mutex
-	d      *decide.Decider
-	params decide.Config
+	mu sync.Mutex
+	r  decide.Reusing
 }
+
+// NewRollout is the rollout for m.
+func NewRollout(m model.Model) *Rollout { return &Rollout{r: decide.Reusing{M: m}} }
 
 func (r *Rollout) Turn(x model.State, robot int, known []int, seed uint64, p turn.Params) int {
 	r.mu.Lock()
 	defer r.mu.Unlock()
-	cfg := DecideConfig(p)
-	if r.d == nil || cfg != r.params {
-		r.d, r.params = decide.New(r.M, cfg), cfg
-	}
-	c, _ := r.d.Turn(x, robot, known, seed)
+	c, _ := r.r.Turn(x, robot, known, seed, p.Decide())
 	return c
-}
-
-// DecideConfig is the fleet's Monte Carlo effort as decide takes it: the
-// robot's own turn and recompute's guesses must use the same.
-func DecideConfig(p turn.Params) decide.Config {
-	return decide.Config{Samples: int(p.Samples), Horizon: int(p.Horizon), TerminalCost: p.TerminalCost}
-}
-
-func turnSeed(fleetSeed, round uint64, robot int) uint64 {
-	return decide.TurnSeed(fleetSeed, int(round), robot)
 }
 
 // guesser fills in missing predecessors with the round's guess source and
@@ -92,7 +77,7 @@ func (g *guesser) fill(c turn.Compute) []int {
 	known := slices.Clone(c.Known)
 	n := g.n
 	ctx := &signal.Context{X: c.State, Round: c.Round, Order: c.Order, Robot: n.cfg.Robot, Known: c.Known,
-		Last: c.Last, Seed: c.Params.Seed, Decide: DecideConfig(c.Params)}
+		Last: c.Last, Seed: c.Params.Seed, Decide: c.Params.Decide()}
 	// Stop recomputing once one more recompute and this robot's own turn
 	// (each about the last turn's compute) no longer fit before its
 	// deadline, less the hop that delivers the decision and a margin.

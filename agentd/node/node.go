@@ -10,6 +10,7 @@ import (
 	"github.com/nats-io/nats.go"
 	"go.uber.org/zap"
 
+	"baton/agentd/decide"
 	"baton/agentd/turn"
 	"baton/deploy/shell"
 	"baton/proto/wire"
@@ -46,7 +47,6 @@ type Node struct {
 	models   chan modelMsg
 	guesses  *guesser
 	drops    shell.Drops
-	lateSeen uint64
 	turnTook time.Duration
 	subs     shell.SubDrops
 }
@@ -54,7 +54,7 @@ type Node struct {
 // New prepares a node on a bus; cfg must pass Validate.
 func New(cfg Config, bus shell.Bus) *Node {
 	if cfg.Compute == nil {
-		cfg.Compute = &Rollout{M: cfg.Model}
+		cfg.Compute = NewRollout(cfg.Model)
 	}
 	if cfg.Log == nil {
 		cfg.Log = zap.NewNop()
@@ -212,16 +212,11 @@ func (n *Node) apply(acts []turn.Action) {
 			} else {
 				n.cfg.Log.Info(a.Text)
 			}
+		case turn.Late:
+			n.cfg.Metrics.Late.Inc()
 		case turn.Drop:
 			n.drops.Drop(string(a.Reason), a.Sender, a.Detail)
 		}
-	}
-	n.mu.Lock()
-	late := n.machine.Late()
-	n.mu.Unlock()
-	if late > n.lateSeen {
-		n.cfg.Metrics.Late.Add(float64(late - n.lateSeen))
-		n.lateSeen = late
 	}
 }
 
@@ -247,10 +242,9 @@ func (n *Node) compute(c turn.Compute) []turn.Action {
 	if len(c.Guess) > 0 {
 		known = n.guesses.fill(c)
 	}
-	p := c.Params
-	seed := turnSeed(p.Seed, c.Round, n.cfg.Robot)
+	seed := decide.TurnSeed(c.Params.Seed, int(c.Round), n.cfg.Robot)
 	t0 := time.Now()
-	ctl := n.cfg.Compute.Turn(c.State, n.cfg.Robot, known, seed, p)
+	ctl := n.cfg.Compute.Turn(c.State, n.cfg.Robot, known, seed, c.Params)
 	took := time.Since(t0)
 	n.turnTook = took
 	n.cfg.Metrics.Compute.Observe(took.Seconds())

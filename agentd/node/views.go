@@ -37,11 +37,6 @@ func viewOf(v turn.View) View {
 		s := v.Stalled
 		out.StalledBy = &s
 	}
-	if out.Hold || !v.Done {
-		out.Reason = v.Reason
-	} else {
-		out.Reason = ""
-	}
 	return out
 }
 
@@ -52,12 +47,9 @@ func (n *Node) Decision(ctx context.Context, r uint64, wait time.Duration, close
 	deadline := time.NewTimer(wait)
 	defer deadline.Stop()
 	for {
-		n.mu.Lock()
-		v := n.machine.View(n.now(), r, closed)
-		ch := n.changed
-		n.mu.Unlock()
+		v, ch := n.view(r, closed, false)
 		if v.Done {
-			return n.connected(v)
+			return viewOf(v)
 		}
 		select {
 		case <-ch:
@@ -65,30 +57,28 @@ func (n *Node) Decision(ctx context.Context, r uint64, wait time.Duration, close
 		case <-ctx.Done():
 		case <-deadline.C:
 		}
-		n.mu.Lock()
-		v = n.machine.View(n.now(), r, closed)
-		n.mu.Unlock()
-		if !v.Done {
-			// Out of time: hold, for the reason the machine gives.
-			v.Hold, v.Control, v.Action = true, 0, n.holdName(v.Round)
-		}
-		return n.connected(v)
+		v, _ = n.view(r, closed, true)
+		return viewOf(v)
 	}
 }
 
-// connected turns a decision into a hold when the bus is gone: nothing is
-// served as something to do while this robot cannot hear the fleet.
-func (n *Node) connected(v turn.View) View {
-	if !v.Hold && !n.bus.Connected() {
-		v.Hold, v.Reason, v.Control, v.Action = true, "lost contact with NATS: no current decision", 0, n.holdName(v.Round)
-	}
-	return viewOf(v)
-}
-
-func (n *Node) holdName(round uint64) string {
+// view reads the machine's view and the channel that signals its next
+// change. final: the wait is over, so a view that is not done holds. Nothing
+// is served as something to do while this robot cannot hear the fleet.
+func (n *Node) view(r uint64, closed, final bool) (turn.View, chan struct{}) {
 	n.mu.Lock()
 	defer n.mu.Unlock()
-	return n.machine.ControlName(round, 0)
+	v := n.machine.View(n.now(), r, closed)
+	switch {
+	case v.Done && !v.Hold && !n.bus.Connected():
+		v.Hold, v.Reason = true, "lost contact with NATS: no current decision"
+	case !v.Done && final:
+		v.Hold = true // out of time: hold, for the reason the machine gives
+	default:
+		return v, n.changed
+	}
+	v.Control, v.Action = 0, n.machine.ControlName(v.Round, 0)
+	return v, n.changed
 }
 
 // Report is an observation from the robot's own software.

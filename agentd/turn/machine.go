@@ -68,13 +68,12 @@ type entry struct {
 	stalled  int // robot id, -1: none
 }
 
-// early is a decision for a round not started here yet, kept until its
-// order and state are known.
-type early struct {
-	robot   int
-	control int32
-	bad     bool // two different decisions came for this robot: use neither
-}
+// noEarly and earlyConflict mark, in next, a robot with no decision kept
+// and one with two different ones (values no int32 control can take).
+const (
+	noEarly       = math.MinInt64
+	earlyConflict = math.MinInt64 + 1
+)
 
 // conflicted marks, in heard, a robot for which two different decisions
 // came this round: neither is used, the robot is guessed as if unheard.
@@ -95,17 +94,16 @@ type Machine struct {
 	phase     phase
 	k         int   // own index in the order (valid unless idle)
 	heard     []int // robot id -> heard control this round, -1: none
-	armed     bool
 	// What the Compute was asked with, so the Decision reports exactly the
 	// inputs of the control it carries even if predecessors arrive later.
 	heardAsk, guessAsk []uint32
 
 	hist map[uint64]*entry // rounds of the followed run, the last History
 
-	// Decisions for one round not started yet: (nextEpoch, nextRound).
+	// Decisions for one round not started yet, (nextEpoch, nextRound): per
+	// robot its control, noEarly or earlyConflict.
 	nextEpoch, nextRound uint64
-	next                 []early
-	nextSeen             []bool
+	next                 []int64
 
 	// A run whose round starts keep being refused (see ResyncAfter).
 	candEpoch, candRound uint64
@@ -134,9 +132,11 @@ func New(cfg Config) *Machine {
 	if cfg.Model != nil {
 		robots = cfg.Model.Robots()
 	}
-	return &Machine{cfg: cfg, robots: robots, drops: make(map[DropReason]uint64),
-		hist: make(map[uint64]*entry), heard: make([]int, robots), nextSeen: make([]bool, robots),
+	m := &Machine{cfg: cfg, robots: robots, drops: make(map[DropReason]uint64),
+		hist: make(map[uint64]*entry), heard: make([]int, robots), next: make([]int64, robots),
 		lastCtl: make([]int, robots)}
+	m.clearNext(0, 0)
+	return m
 }
 
 // Round is the current round (0 before the first admitted round start).
@@ -153,9 +153,6 @@ func (m *Machine) Counters() Counters {
 	}
 	return c
 }
-
-// Late is Counters().Late without copying the drop map.
-func (m *Machine) Late() uint64 { return m.late }
 
 // Step feeds one event and returns what the driver must do, in order.
 // Unknown events are ignored.
@@ -279,7 +276,7 @@ func (m *Machine) fresh(s Start) (newRun, resync bool, d *Drop) {
 	switch {
 	case s.Epoch == m.epoch && s.Round == m.cur.round:
 		m.drops[DropDuplicate]++
-		return false, false, &Drop{Reason: DropDuplicate, Sender: s.Sender, Detail: fmt.Sprintf("round %d already started", s.Round)}
+		return false, false, &Drop{Reason: DropDuplicate, Sender: Who(s.Sender), Detail: fmt.Sprintf("round %d already started", s.Round)}
 	case s.Epoch == m.epoch && s.Round < m.cur.round:
 		reason, why = DropStale, fmt.Sprintf("round %d is before current round %d", s.Round, m.cur.round)
 	case s.Epoch == m.epoch && s.Round-m.cur.round > RoundWindow:
@@ -304,7 +301,7 @@ func (m *Machine) fresh(s Start) (newRun, resync bool, d *Drop) {
 		return s.Epoch != m.epoch, true, nil
 	}
 	m.drops[reason]++
-	return false, false, &Drop{Reason: reason, Sender: s.Sender, Detail: why}
+	return false, false, &Drop{Reason: reason, Sender: Who(s.Sender), Detail: why}
 }
 
 func (m *Machine) begin(c current, s Start, newRun, resync bool) []Action {
@@ -330,7 +327,7 @@ func (m *Machine) begin(c current, s Start, newRun, resync bool) []Action {
 	for r := range m.heard {
 		m.heard[r] = -1
 	}
-	m.armed, m.heardAsk, m.guessAsk, m.phase, m.k = false, nil, nil, idle, 0
+	m.heardAsk, m.guessAsk, m.phase, m.k = nil, nil, idle, 0
 	// Keep the last History rounds; after a resync backwards, drop the
 	// rounds "ahead" that the bad start made.
 	for r := range m.hist {
@@ -344,30 +341,26 @@ func (m *Machine) begin(c current, s Start, newRun, resync bool) []Action {
 	}
 	k := c.pos[m.cfg.Robot]
 	m.hist[c.round] = &entry{x: c.x, controls: controls, inOrder: k >= 0, stalled: -1}
-	acts = append(acts, Began{Epoch: m.epoch, Round: c.round, NewRun: newRun, InOrder: k >= 0, Mode: c.mode,
-		Guess: c.guess, ModelVersion: c.model, Resync: resync})
+	acts = append(acts, Began{Epoch: m.epoch, Round: c.round, NewRun: newRun, ModelVersion: c.model, Resync: resync})
 
 	// Decisions that came before their round's start.
-	buf := m.next
 	match := m.nextEpoch == m.epoch && m.nextRound == c.round
-	m.next = nil
-	m.nextEpoch, m.nextRound = 0, 0
-	clear(m.nextSeen)
-	for _, b := range buf {
-		if !match {
-			acts = append(acts, m.drop(DropStale, strconv.Itoa(b.robot), "decision kept for a round that did not start; round %d started", c.round)...)
-			continue
+	for robot, ctl := range m.next {
+		switch {
+		case ctl == noEarly:
+		case !match:
+			acts = append(acts, m.drop(DropStale, strconv.Itoa(robot), "decision kept for a round that did not start; round %d started", c.round)...)
+		case ctl == earlyConflict:
+			m.heard[robot] = conflicted
+		default:
+			if d := m.admit(robot, int32(ctl)); d != nil {
+				acts = append(acts, d...)
+			} else {
+				m.heard[robot] = int(ctl)
+			}
 		}
-		if b.bad {
-			m.heard[b.robot] = conflicted
-			continue
-		}
-		if d := m.admit(b.robot, b.control); d != nil {
-			acts = append(acts, d...)
-			continue
-		}
-		m.heard[b.robot] = int(b.control)
 	}
+	m.clearNext(0, 0)
 
 	if k < 0 {
 		return acts // sit the round out: the robot holds
@@ -379,7 +372,7 @@ func (m *Machine) begin(c current, s Start, newRun, resync bool) []Action {
 	case m.allHeard():
 		acts = append(acts, m.compute(true))
 	case c.mode == Hybrid:
-		m.phase, m.armed = waiting, true
+		m.phase = waiting
 		acts = append(acts, Arm{Epoch: m.epoch, Round: c.round, At: c.at + c.deadlines[k-1]})
 	default:
 		m.phase = waiting
@@ -427,13 +420,13 @@ func (m *Machine) compute(useHeard bool) Compute {
 		guess = append(guess, p)
 		m.guessAsk = append(m.guessAsk, uint32(p))
 	}
-	m.phase, m.armed = computing, false
+	m.phase = computing
 	var last []int
 	if m.lastCtlRound != 0 && m.lastCtlRound+1 == m.cur.round {
 		last = slices.Clone(m.lastCtl)
 	}
 	return Compute{Epoch: m.epoch, Round: m.cur.round, Known: known, Guess: guess, State: m.cur.x, Params: m.cur.params,
-		Order: m.cur.order, Mode: m.cur.mode, GuessSource: m.cur.guess, Last: last, Due: m.cur.at + m.cur.deadlines[m.k]}
+		Order: m.cur.order, GuessSource: m.cur.guess, Last: last, Due: m.cur.at + m.cur.deadlines[m.k]}
 }
 
 // ---- decisions ----
@@ -482,6 +475,7 @@ func (m *Machine) onDecision(e GotDecision) []Action {
 		// In parallel mode nobody waits, so nothing can be late.
 		if m.cur.mode != Parallel {
 			m.late++
+			return []Action{Late{Robot: robot}}
 		}
 	}
 	return nil
@@ -503,29 +497,37 @@ func (m *Machine) onOtherRound(d Decision, robot int, sender string) []Action {
 	}
 	var acts []Action
 	if m.nextEpoch != d.Epoch || m.nextRound != d.Round {
-		for _, b := range m.next {
-			acts = append(acts, m.drop(DropStale, strconv.Itoa(b.robot), "decision kept for round %d replaced by one for round %d", m.nextRound, d.Round)...)
-		}
-		m.next = m.next[:0]
-		clear(m.nextSeen)
-		m.nextEpoch, m.nextRound = d.Epoch, d.Round
-	}
-	if m.nextSeen[robot] {
-		for i := range m.next {
-			if b := &m.next[i]; b.robot == robot && b.control != d.Control && !b.bad {
-				b.bad = true
-				return append(acts, m.drop(DropDuplicate, sender, "robot %d sent control %d and then %d for round %d: neither is used (one is not the robot's)", robot, b.control, d.Control, d.Round)...)
+		for r, ctl := range m.next {
+			if ctl != noEarly {
+				acts = append(acts, m.drop(DropStale, strconv.Itoa(r), "decision kept for round %d replaced by one for round %d", m.nextRound, d.Round)...)
 			}
 		}
-		return append(acts, m.drop(DropDuplicate, sender, "second decision from robot %d for round %d", robot, d.Round)...)
+		m.clearNext(d.Epoch, d.Round)
 	}
-	m.nextSeen[robot] = true
-	m.next = append(m.next, early{robot: robot, control: d.Control})
+	switch had := m.next[robot]; {
+	case had == noEarly:
+		m.next[robot] = int64(d.Control)
+	case had == int64(d.Control) || had == earlyConflict:
+		acts = append(acts, m.drop(DropDuplicate, sender, "second decision from robot %d for round %d", robot, d.Round)...)
+	default:
+		m.next[robot] = earlyConflict
+		acts = append(acts, m.drop(DropDuplicate, sender, "robot %d sent control %d and then %d for round %d: neither is used (one is not the robot's)", robot, had, d.Control, d.Round)...)
+	}
 	return acts
 }
 
+// clearNext empties the kept decisions and sets the round they are for.
+func (m *Machine) clearNext(epoch, round uint64) {
+	for r := range m.next {
+		m.next[r] = noEarly
+	}
+	m.nextEpoch, m.nextRound = epoch, round
+}
+
 func (m *Machine) onTimer(e Timer) []Action {
-	if !m.following || e.Epoch != m.epoch || e.Round != m.cur.round || m.phase != waiting || !m.armed {
+	// Only a hybrid wait has a timer; a sequential one waits for its
+	// predecessors or the close.
+	if !m.following || e.Epoch != m.epoch || e.Round != m.cur.round || m.phase != waiting || m.cur.mode != Hybrid {
 		return nil
 	}
 	return []Action{m.compute(true)}
@@ -623,7 +625,7 @@ func (m *Machine) onClose(e GotClose) []Action {
 		m.lastCtlRound = c.Round
 	}
 	if c.Round == m.cur.round && m.phase == waiting {
-		m.phase, m.armed = idle, false // the round is over: stop waiting
+		m.phase = idle // the round is over: stop waiting
 	}
 	return nil
 }

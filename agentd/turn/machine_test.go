@@ -71,7 +71,7 @@ func checkActions(t *testing.T, acts []Action) {
 			if a.Detail == "" {
 				t.Fatalf("drop without detail: %+v", a)
 			}
-		case Arm, Compute, Publish, SendReport, Began, Note:
+		case Arm, Compute, Publish, SendReport, Began, Note, Late:
 		default:
 			t.Fatalf("unknown action %T", a)
 		}
@@ -292,8 +292,7 @@ func TestHybridTurn(t *testing.T) {
 		t.Fatalf("%+v", c)
 	}
 	// Robot 0 arrives late: counted, not used.
-	r.step(heard(arm.At+1, dec(7, 5, 0, 2)))
-	if r.m.Late() != 1 {
+	if l := only[Late](t, r.step(heard(arm.At+1, dec(7, 5, 0, 2)))); l.Robot != 0 || r.m.Counters().Late != 1 {
 		t.Fatal("late not counted")
 	}
 	p := only[Publish](t, r.step(Computed{Now: arm.At + 5, Epoch: 7, Round: 5, Control: 3, Took: 5 * time.Microsecond}))

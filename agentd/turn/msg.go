@@ -134,6 +134,12 @@ const (
 	HelloGap = 200 * time.Millisecond
 )
 
+// Decide is the effort as decide takes it: a robot's own turn and
+// recompute's guesses must use exactly the fleet's.
+func (p Params) Decide() decide.Config {
+	return decide.Config{Samples: int(p.Samples), Horizon: int(p.Horizon), TerminalCost: p.TerminalCost}
+}
+
 // CheckParams reports why p is over a bound, or "".
 func CheckParams(p Params) string {
 	switch {

@@ -136,7 +136,6 @@ type Compute struct {
 	State        model.State
 	Params       Params
 	Order        []int
-	Mode         Mode
 	GuessSource  string
 	// Last is every robot's control in the previous round as closed (-1
 	// where it held), nil when that close was not seen: the last source.
@@ -167,12 +166,14 @@ type SendReport struct {
 type Began struct {
 	Epoch, Round uint64
 	NewRun       bool // the first round of a coordinator run this robot follows
-	InOrder      bool
-	Mode         Mode
-	Guess        string
 	ModelVersion uint64
 	Resync       bool // admitted only because its run kept coming (ResyncAfter)
 }
+
+// Late: a valid decision from a predecessor came after this robot had
+// already decided without it. Counted, not dropped: the message was fine,
+// the link was slow.
+type Late struct{ Robot int }
 
 // Note is something the operator should read in the log.
 type Note struct {
@@ -186,6 +187,7 @@ func (Publish) isAction()    {}
 func (SendReport) isAction() {}
 func (Began) isAction()      {}
 func (Note) isAction()       {}
+func (Late) isAction()       {}
 
 // Set parses a mode name, so a Mode can be a command-line flag.
 func (m *Mode) Set(s string) error {

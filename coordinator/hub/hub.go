@@ -158,12 +158,12 @@ func (h *Hub) Run(ctx context.Context) error {
 		return fmt.Errorf("nats flush: %w", err)
 	}
 	h.cfg.Log.Info("run begins", zap.Uint64("epoch", h.cfg.Clock.Epoch))
-	if done, err := h.apply(h.machine.Step(clock.Begin{Now: h.now()})); done || err != nil {
+	begin := append(h.machine.Step(clock.Begin{Now: h.now()}), h.members(true)...)
+	if done, err := h.apply(begin); done || err != nil {
 		return err
 	}
 	members := time.NewTicker(MembersEvery)
 	defer members.Stop()
-	h.members(true)
 	second := time.NewTicker(time.Second)
 	defer second.Stop()
 	for {
@@ -204,8 +204,9 @@ func (h *Hub) Run(ctx context.Context) error {
 	}
 }
 
-// members tells the machine when gossip's live set changed.
-func (h *Hub) members(first bool) []clock.Action {
+// members tells the machine gossip's live set when it changed (or always,
+// with force).
+func (h *Hub) members(force bool) []clock.Action {
 	var alive []int
 	if h.cfg.Alive == nil {
 		alive = make([]int, h.cfg.Clock.Model.Robots())
@@ -216,16 +217,11 @@ func (h *Hub) members(first bool) []clock.Action {
 		alive = h.cfg.Alive()
 		sort.Ints(alive)
 	}
-	if !first && slices.Equal(alive, h.alive) {
+	if !force && slices.Equal(alive, h.alive) {
 		return nil
 	}
 	h.alive = alive
-	acts := h.machine.Step(clock.Members{Now: h.now(), Alive: alive})
-	if first {
-		_, _ = h.apply(acts)
-		return nil
-	}
-	return acts
+	return h.machine.Step(clock.Members{Now: h.now(), Alive: alive})
 }
 
 // apply carries out the machine's actions; done is true once every round

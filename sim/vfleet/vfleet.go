@@ -73,8 +73,7 @@ type Fleet struct {
 	coord   *clock.Machine
 	world   *world.World
 	sources *signal.Sources
-	decider *decide.Decider
-	dcfg    decide.Config
+	decider decide.Reusing
 
 	q    queue
 	now  time.Duration
@@ -84,7 +83,6 @@ type Fleet struct {
 	// The robots' software: waiting for round round's closes.
 	round   int
 	answers []*turn.View
-	waitEnd time.Duration
 
 	results []fleetsum.Round
 	target  int // Run stops filing rounds here
@@ -126,7 +124,7 @@ func New(cfg Config) (*Fleet, error) {
 	if cfg.Stale <= 0 {
 		cfg.Stale = 10 * time.Second
 	}
-	f := &Fleet{cfg: cfg, m: fm, coord: clock.New(cfg.Clock), world: world.New(fm, cfg.World), sources: src,
+	f := &Fleet{cfg: cfg, m: fm, coord: clock.New(cfg.Clock), world: world.New(fm, cfg.World), sources: src, decider: decide.Reusing{M: fm},
 		link: rand.New(rand.NewPCG(cfg.Link.Seed, 0x6c696e6b))}
 	for r := range m {
 		f.robots = append(f.robots, &robot{id: r, m: turn.New(turn.Config{Fleet: cfg.Clock.Fleet, Robot: r, Model: fm,
@@ -197,8 +195,7 @@ func (f *Fleet) begin() {
 	f.coordStep(clock.Members{Now: f.now, Alive: alive})
 	f.round = 1
 	f.answers = make([]*turn.View, len(f.robots))
-	f.waitEnd = f.now + f.cfg.Wait
-	f.at(f.waitEnd, f.softDeadline(1))
+	f.at(f.now+f.cfg.Wait, f.softDeadline(1))
 	for _, r := range f.robots {
 		f.observe(r, 0, 0)
 	}
@@ -366,10 +363,7 @@ func (f *Fleet) sendReport(r *robot, rep turn.Report) {
 // delivers the result TurnTime later, plus TurnTime per recomputed guess.
 func (f *Fleet) computeTurn(r *robot, c turn.Compute) {
 	t0 := time.Now()
-	cfg := decide.Config{Samples: int(c.Params.Samples), Horizon: int(c.Params.Horizon), TerminalCost: c.Params.TerminalCost}
-	if f.decider == nil || cfg != f.dcfg {
-		f.decider, f.dcfg = decide.New(f.m, cfg), cfg
-	}
+	cfg := c.Params.Decide()
 	known := c.Known
 	took := f.cfg.TurnTime
 	if len(c.Guess) > 0 {
@@ -393,7 +387,7 @@ func (f *Fleet) computeTurn(r *robot, c turn.Compute) {
 			took += recomputed
 		}
 	}
-	ctl, _ := f.decider.Turn(c.State, r.id, known, decide.TurnSeed(c.Params.Seed, int(c.Round), r.id))
+	ctl, _ := f.decider.Turn(c.State, r.id, known, decide.TurnSeed(c.Params.Seed, int(c.Round), r.id), cfg)
 	f.compute += time.Since(t0)
 	ev := turn.Computed{Epoch: c.Epoch, Round: c.Round, Control: ctl, Took: took}
 	f.at(f.now+took, func() { ev.Now = f.now; f.robotStep(r, ev) })
@@ -477,8 +471,8 @@ func (f *Fleet) maybeStep() {
 	done := f.round
 	f.round++
 	f.answers = make([]*turn.View, len(f.robots))
-	f.waitEnd, f.started = f.now+f.cfg.Wait, f.now
-	f.at(f.waitEnd, f.softDeadline(f.round))
+	f.started = f.now
+	f.at(f.now+f.cfg.Wait, f.softDeadline(f.round))
 	for i, r := range f.robots {
 		f.observe(r, uint64(done), u[i])
 	}
