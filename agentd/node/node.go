@@ -76,11 +76,19 @@ func New(cfg Config, bus shell.Bus) *Node {
 func (n *Node) now() time.Duration { return time.Since(n.epoch) }
 
 // step feeds the machine under the lock and wakes readers of its views.
+// Peers' decisions and report requests never change what this robot's
+// software sees (a decision that completes the wait leads to a Computed
+// step, which does), so they wake nobody: in a parallel round every robot
+// handles m-1 of them at once.
 func (n *Node) step(ev turn.Event) []turn.Action {
 	n.mu.Lock()
 	acts := n.machine.Step(ev)
-	close(n.changed)
-	n.changed = make(chan struct{})
+	switch ev.(type) {
+	case turn.GotDecision, turn.GotHello:
+	default:
+		close(n.changed)
+		n.changed = make(chan struct{})
+	}
 	n.mu.Unlock()
 	return acts
 }

@@ -30,8 +30,10 @@ import (
 const (
 	DecisionPending = 4096
 	ReportPending   = 4096
-	// MembersEvery is how often gossip membership is read.
+	// MembersEvery is how often gossip membership is read at the least;
+	// MembersFresh how old it may be when a round may start.
 	MembersEvery = 100 * time.Millisecond
+	MembersFresh = 10 * time.Millisecond
 )
 
 // Config of a coordinator's shell.
@@ -93,16 +95,17 @@ func NewMetrics(reg prometheus.Registerer) *Metrics {
 
 // Hub is a running coordinator.
 type Hub struct {
-	cfg     Config
-	bus     shell.Bus
-	machine *clock.Machine
-	start   time.Time // the machine's clock counts from here
-	timers  chan struct{}
-	models  chan uint64
-	done    chan struct{}
-	drops   shell.Drops
-	alive   []int
-	subs    shell.SubDrops
+	cfg       Config
+	bus       shell.Bus
+	machine   *clock.Machine
+	start     time.Time // the machine's clock counts from here
+	timers    chan struct{}
+	models    chan uint64
+	done      chan struct{}
+	drops     shell.Drops
+	alive     []int
+	membersAt time.Time
+	subs      shell.SubDrops
 }
 
 // New prepares a hub on a bus. cfg.Clock must pass Validate; an epoch of 0
@@ -205,8 +208,14 @@ func (h *Hub) Run(ctx context.Context) error {
 }
 
 // members tells the machine gossip's live set when it changed (or always,
-// with force).
+// with force). Reading gossip costs a scan of every member, and a round
+// brings one report per robot: it is read at most once per MembersFresh,
+// far below the time gossip takes to notice anything.
 func (h *Hub) members(force bool) []clock.Action {
+	if !force && time.Since(h.membersAt) < MembersFresh {
+		return nil
+	}
+	h.membersAt = time.Now()
 	var alive []int
 	if h.cfg.Alive == nil {
 		alive = make([]int, h.cfg.Clock.Model.Robots())
@@ -227,56 +236,23 @@ func (h *Hub) members(force bool) []clock.Action {
 // apply carries out the machine's actions; done is true once every round
 // asked for is filed.
 func (h *Hub) apply(acts []clock.Action) (done bool, err error) {
+	// Messages first, in order: a round's latency runs from the moment the
+	// machine starts it, and writing the previous round's log line (often
+	// in the same batch) must not sit in between.
+	rest := acts[:0:0]
 	for _, a := range acts {
-		switch a := a.(type) {
-		case clock.SendStart:
-			err = h.publish(h.cfg.Subjects.Round, fmt.Sprintf("round %d start", a.Msg.Round), func() ([]byte, error) { return wire.EncodeStart(a.Msg) })
-			h.cfg.Metrics.OrderSize.Set(float64(len(a.Msg.Order)))
-		case clock.SendClose:
-			err = h.publish(h.cfg.Subjects.Close, fmt.Sprintf("round %d close", a.Msg.Round), func() ([]byte, error) { return wire.EncodeClose(a.Msg) })
-		case clock.SendHello:
-			if e := h.publish(h.cfg.Subjects.Hello, "report request", func() ([]byte, error) { return wire.EncodeHello(a.Msg) }); e != nil {
-				h.cfg.Log.Warn("asking robots for reports", zap.Error(e))
+		switch a.(type) {
+		case clock.SendStart, clock.SendClose, clock.SendHello:
+			if done, err = h.act(a); err != nil {
+				return done, err
 			}
-		case clock.Arm:
-			d := a.At - h.now()
-			time.AfterFunc(max(d, 0), func() {
-				select {
-				case h.timers <- struct{}{}:
-				default: // a tick is already due: it covers this one
-				}
-			})
-		case clock.Closed:
-			r := a.Record
-			h.cfg.Metrics.Rounds.Inc()
-			h.cfg.Metrics.Held.Add(float64(len(r.Held)))
-			h.cfg.Metrics.RoundLatency.Observe(float64(r.LatencyUs) / 1e6)
-			for _, d := range r.Decisions {
-				if len(d.Guessed) > 0 {
-					h.cfg.Metrics.Guessed.Inc()
-				}
-			}
-			h.cfg.Log.Debug("round closed", zap.Uint64("round", r.Round), zap.Ints("order", r.Order), zap.Ints("held", r.Held),
-				zap.Uint64("latency_us", r.LatencyUs))
-		case clock.Filed:
-			h.file(a.Record)
-		case clock.Late:
-			h.cfg.Metrics.Late.Inc()
-		case clock.Note:
-			fields := []zap.Field{zap.Uint64("round", a.Round)}
-			if a.Robot >= 0 {
-				fields = append(fields, zap.Int("robot", a.Robot))
-			}
-			if a.Warn {
-				h.cfg.Log.Warn(a.Text, fields...)
-			} else {
-				h.cfg.Log.Info(a.Text, fields...)
-			}
-		case clock.Drop:
-			h.drops.Drop(string(a.Reason), a.Sender, a.Detail)
-		case clock.Finished:
-			done = true
+		default:
+			rest = append(rest, a)
 		}
+	}
+	for _, a := range rest {
+		d, err := h.act(a)
+		done = done || d
 		if err != nil {
 			return done, err
 		}
@@ -284,13 +260,68 @@ func (h *Hub) apply(acts []clock.Action) (done bool, err error) {
 	return done, nil
 }
 
-func (h *Hub) publish(subject, what string, encode func() ([]byte, error)) error {
+// act carries out one action; done is true once every round asked for is
+// filed.
+func (h *Hub) act(a clock.Action) (done bool, err error) {
+	switch a := a.(type) {
+	case clock.SendStart:
+		err = h.publish(h.cfg.Subjects.Round, "round start", a.Msg.Round, func() ([]byte, error) { return wire.EncodeStart(a.Msg) })
+		h.cfg.Metrics.OrderSize.Set(float64(len(a.Msg.Order)))
+	case clock.SendClose:
+		err = h.publish(h.cfg.Subjects.Close, "round close", a.Msg.Round, func() ([]byte, error) { return wire.EncodeClose(a.Msg) })
+	case clock.SendHello:
+		if e := h.publish(h.cfg.Subjects.Hello, "report request", h.machine.Round(), func() ([]byte, error) { return wire.EncodeHello(a.Msg) }); e != nil {
+			h.cfg.Log.Warn("asking robots for reports", zap.Error(e))
+		}
+	case clock.Arm:
+		d := a.At - h.now()
+		time.AfterFunc(max(d, 0), func() {
+			select {
+			case h.timers <- struct{}{}:
+			default: // a tick is already due: it covers this one
+			}
+		})
+	case clock.Closed:
+		r := a.Record
+		h.cfg.Metrics.Rounds.Inc()
+		h.cfg.Metrics.Held.Add(float64(len(r.Held)))
+		h.cfg.Metrics.RoundLatency.Observe(float64(r.LatencyUs) / 1e6)
+		for _, d := range r.Decisions {
+			if len(d.Guessed) > 0 {
+				h.cfg.Metrics.Guessed.Inc()
+			}
+		}
+		h.cfg.Log.Debug("round closed", zap.Uint64("round", r.Round), zap.Ints("order", r.Order), zap.Ints("held", r.Held),
+			zap.Uint64("latency_us", r.LatencyUs))
+	case clock.Filed:
+		h.file(a.Record)
+	case clock.Late:
+		h.cfg.Metrics.Late.Inc()
+	case clock.Note:
+		fields := []zap.Field{zap.Uint64("round", a.Round)}
+		if a.Robot >= 0 {
+			fields = append(fields, zap.Int("robot", a.Robot))
+		}
+		if a.Warn {
+			h.cfg.Log.Warn(a.Text, fields...)
+		} else {
+			h.cfg.Log.Info(a.Text, fields...)
+		}
+	case clock.Drop:
+		h.drops.Drop(string(a.Reason), a.Sender, a.Detail)
+	case clock.Finished:
+		done = true
+	}
+	return done, err
+}
+
+func (h *Hub) publish(subject, what string, round uint64, encode func() ([]byte, error)) error {
 	data, err := encode()
 	if err == nil {
 		err = h.bus.Publish(subject, data)
 	}
 	if err != nil {
-		return fmt.Errorf("publish %s: %w", what, err)
+		return fmt.Errorf("publish %s (round %d): %w", what, round, err)
 	}
 	return nil
 }
