@@ -30,10 +30,8 @@ import (
 const (
 	DecisionPending = 4096
 	ReportPending   = 4096
-	// MembersEvery is how often gossip membership is read at the least;
-	// MembersFresh how old it may be when a round may start.
+	// MembersEvery is how often gossip membership is read at the least.
 	MembersEvery = 100 * time.Millisecond
-	MembersFresh = 10 * time.Millisecond
 )
 
 // Config of a coordinator's shell.
@@ -95,17 +93,16 @@ func NewMetrics(reg prometheus.Registerer) *Metrics {
 
 // Hub is a running coordinator.
 type Hub struct {
-	cfg       Config
-	bus       shell.Bus
-	machine   *clock.Machine
-	start     time.Time // the machine's clock counts from here
-	timers    chan struct{}
-	models    chan uint64
-	done      chan struct{}
-	drops     shell.Drops
-	alive     []int
-	membersAt time.Time
-	subs      shell.SubDrops
+	cfg     Config
+	bus     shell.Bus
+	machine *clock.Machine
+	start   time.Time // the machine's clock counts from here
+	timers  chan struct{}
+	models  chan uint64
+	done    chan struct{}
+	drops   shell.Drops
+	alive   []int
+	subs    shell.SubDrops
 }
 
 // New prepares a hub on a bus. cfg.Clock must pass Validate; an epoch of 0
@@ -208,14 +205,9 @@ func (h *Hub) Run(ctx context.Context) error {
 }
 
 // members tells the machine gossip's live set when it changed (or always,
-// with force). Reading gossip costs a scan of every member, and a round
-// brings one report per robot: it is read at most once per MembersFresh,
-// far below the time gossip takes to notice anything.
+// with force). It is read before every report and tick, since either may
+// start a round: a robot that joined a moment ago must be in its order.
 func (h *Hub) members(force bool) []clock.Action {
-	if !force && time.Since(h.membersAt) < MembersFresh {
-		return nil
-	}
-	h.membersAt = time.Now()
 	var alive []int
 	if h.cfg.Alive == nil {
 		alive = make([]int, h.cfg.Clock.Model.Robots())
