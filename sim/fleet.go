@@ -8,6 +8,7 @@ import (
 	"flag"
 	"fmt"
 	"io"
+	"math/rand/v2"
 	"net"
 	"net/http"
 	"os"
@@ -205,11 +206,40 @@ func (f *fleetRun) startRobot(r int) error {
 	return err
 }
 
+// waitRobot waits for robot r's daemon to serve. A port picked free can be
+// taken by another process before the daemon binds it; then the daemon
+// starts again on another port (a few times at most).
 func (f *fleetRun) waitRobot(ctx context.Context, r int) error {
-	if err := waitHealthy(ctx, f.client, f.bases[r]+"/healthz", 30*time.Second, f.robots[r]); err != nil {
-		return fmt.Errorf("agentd %d did not come up (see %s): %w", r, filepath.Join(f.o.logDir, fmt.Sprintf("agentd-%d.log", r)), err)
+	logPath := filepath.Join(f.o.logDir, fmt.Sprintf("agentd-%d.log", r))
+	for attempt := 0; ; attempt++ {
+		err := waitHealthy(ctx, f.client, f.bases[r]+"/healthz", 30*time.Second, f.robots[r])
+		if err == nil {
+			return nil
+		}
+		if attempt == 3 || !f.robots[r].exited() || !lostPort(logPath) {
+			return fmt.Errorf("agentd %d did not come up (see %s): %w", r, logPath, err)
+		}
+		ports, perr := freePorts(1)
+		if perr != nil {
+			return perr
+		}
+		f.bases[r] = fmt.Sprintf("http://127.0.0.1:%d", ports[0])
+		if err := f.startRobot(r); err != nil {
+			return err
+		}
 	}
-	return nil
+}
+
+// lostPort reports whether a child's log ends with a failure to bind.
+func lostPort(logPath string) bool {
+	b, err := os.ReadFile(logPath)
+	if err != nil {
+		return false
+	}
+	if len(b) > 4096 {
+		b = b[len(b)-4096:]
+	}
+	return bytes.Contains(b, []byte("address already in use"))
 }
 
 // kill stops robot r's daemon abruptly (SIGKILL: no goodbye to gossip).
@@ -585,23 +615,51 @@ func (f *fleetRun) waitAlive(ctx context.Context, want int, limit time.Duration)
 	return fmt.Errorf("fewer than %d robots after %s", want, limit)
 }
 
+// freePorts finds n loopback ports free for TCP and UDP (gossip uses
+// both). It looks below the kernel's ephemeral range, where outgoing
+// connections cannot take a port between this check and the child's bind.
 func freePorts(n int) ([]int, error) {
-	var ls []net.Listener
+	var closers []io.Closer
 	defer func() {
-		for _, l := range ls {
-			l.Close()
+		for _, c := range closers {
+			c.Close()
 		}
 	}()
 	var ports []int
-	for range n {
-		l, err := net.Listen("tcp", "127.0.0.1:0")
-		if err != nil {
-			return nil, err
+	lo := ephemeralLow()
+	for tries := 0; len(ports) < n; tries++ {
+		if tries > 200*n {
+			return nil, fmt.Errorf("no %d free loopback ports below %d", n, lo)
 		}
-		ls = append(ls, l)
-		ports = append(ports, l.Addr().(*net.TCPAddr).Port)
+		port := 10000 + rand.IntN(lo-10000)
+		addr := fmt.Sprintf("127.0.0.1:%d", port)
+		l, err := net.Listen("tcp", addr)
+		if err != nil {
+			continue
+		}
+		u, err := net.ListenPacket("udp", addr)
+		if err != nil {
+			l.Close()
+			continue
+		}
+		closers = append(closers, l, u)
+		ports = append(ports, port)
 	}
 	return ports, nil
+}
+
+// ephemeralLow is the lowest port the kernel hands to outgoing
+// connections (32768 when it cannot tell).
+func ephemeralLow() int {
+	b, err := os.ReadFile("/proc/sys/net/ipv4/ip_local_port_range")
+	if err == nil {
+		if f := strings.Fields(string(b)); len(f) == 2 {
+			if lo, err := strconv.Atoi(f[0]); err == nil && lo > 11000 && lo <= 65535 {
+				return lo
+			}
+		}
+	}
+	return 32768
 }
 
 // stopAll asks every process to stop, then kills what is left after 5s.
