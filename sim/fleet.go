@@ -416,7 +416,7 @@ exactly what the real fleet decides for the same flags: compare decisions_sha256
 	ctx, stop := signal.NotifyContext(context.Background(), os.Interrupt, syscall.SIGTERM)
 	defer stop()
 	rounds := o.clock.Rounds
-	sum := fleetsum.Summary{Mode: o.clock.Mode.String(), Guess: o.clock.Guess, Virtual: o.virtual}
+	sum := fleetsum.Summary{Mode: clock.ModeName(o.clock), Guess: o.clock.Guess, Virtual: o.virtual}
 	tally := fleetsum.NewTally()
 	line := func(r fleetsum.Round) {
 		tally.Add(&sum, r)

@@ -194,6 +194,7 @@ type Machine struct {
 	haveAlive bool
 	model     uint64
 	monitor   *turn.LinkMonitor
+	compute   *turn.LinkMonitor // robots' turn compute times, for the switch
 
 	gatherAt time.Duration
 	helloAt  time.Duration
@@ -232,8 +233,11 @@ type Machine struct {
 // New returns a machine for one run; cfg must pass Validate.
 func New(cfg Config) *Machine {
 	robots := cfg.Model.Robots()
-	mon := turn.NewLinkMonitor(0, 0, 0)
-	return &Machine{cfg: cfg, m: cfg.Model, robots: robots, monitor: mon, drops: map[turn.DropReason]uint64{},
+	// The switch looks at the last four rounds' hops: long enough that one
+	// slow hop does not flip a round, short enough to switch back within a
+	// few rounds once the links recover.
+	mon := turn.NewLinkMonitor(0, max(8, 4*robots), 0)
+	return &Machine{cfg: cfg, m: cfg.Model, robots: robots, monitor: mon, compute: turn.NewLinkMonitor(0, 0, 0), drops: map[turn.DropReason]uint64{},
 		gathered: make([]*turn.Report, robots), reports: make([]*turn.Report, robots), positions: make([]*turn.Report, robots),
 		got: make([]*turn.Decision, robots), conflict: make([]bool, robots), heldRun: make([]int, robots), stallRun: make([]int, robots),
 		scratch: cfg.Model.NewState()}
@@ -415,7 +419,7 @@ func (c *Machine) start(order []int) []Action {
 	c.startAt, c.order, c.phase = c.now, order, collecting
 	c.mode = c.cfg.Mode
 	if c.cfg.AutoParallel && c.cfg.Period > 0 && c.mode != turn.Parallel &&
-		c.monitor.Suggest(len(order), 0, c.cfg.Period) == turn.Parallel {
+		c.monitor.Suggest(len(order), c.compute.EWMA(), c.cfg.Period) == turn.Parallel {
 		c.mode = turn.Parallel
 	}
 	c.pos = make([]int, c.robots)
@@ -682,6 +686,9 @@ func (c *Machine) onDecision(e GotDecision) []Action {
 		Guessed: orEmpty(d.Guessed), ComputeUs: d.ComputeUs, HopUs: d.HopUs, AfterUs: uint64(max(c.now-c.startAt, 0) / time.Microsecond)})
 	if d.HopUs > 0 && d.HopUs < uint64(turn.MaxDeadline/time.Microsecond) {
 		c.monitor.Observe(time.Duration(d.HopUs) * time.Microsecond)
+	}
+	if d.ComputeUs < uint64(turn.MaxDeadline/time.Microsecond) {
+		c.compute.Observe(time.Duration(d.ComputeUs) * time.Microsecond)
 	}
 	return nil
 }

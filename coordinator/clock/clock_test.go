@@ -469,6 +469,66 @@ func TestMembershipChangesOrder(t *testing.T) {
 	}
 }
 
+// --mode auto is hybrid with the switch; Args passes it on as such.
+func TestModeAutoFlag(t *testing.T) {
+	c := config(t, 3)
+	fs := flag.NewFlagSet("", flag.ContinueOnError)
+	fs.SetOutput(io.Discard)
+	c.RegisterFlags(fs)
+	if err := fs.Parse([]string{"--mode", "auto", "--period", "1s"}); err != nil {
+		t.Fatal(err)
+	}
+	if c.Mode != turn.Hybrid || !c.AutoParallel || ModeName(c) != "auto" || c.Validate() != nil {
+		t.Fatalf("%v %v %q %v", c.Mode, c.AutoParallel, ModeName(c), c.Validate())
+	}
+	if !slices.Contains(c.Args(), "--mode=auto") {
+		t.Fatalf("args %v", c.Args())
+	}
+	if err := fs.Parse([]string{"--mode", "parallel"}); err != nil || c.AutoParallel {
+		t.Fatalf("parallel after auto: %v %v", err, c.AutoParallel)
+	}
+	if err := fs.Parse([]string{"--mode", "sometimes"}); err == nil || !strings.Contains(err.Error(), "auto") {
+		t.Fatalf("bad mode: %v", err)
+	}
+}
+
+// With --mode auto a round goes parallel while hops cannot fit a
+// sequential round in the period, and back to hybrid once they can.
+func TestAutoSwitchesBack(t *testing.T) {
+	cfg := config(t, 3)
+	cfg.AutoParallel, cfg.Period = true, 30*time.Millisecond
+	r := newRig(t, cfg)
+	r.gathered()
+	var modes []turn.Mode
+	for round := uint64(1); round <= 40; round++ {
+		hop := uint64(2000)
+		if round >= 5 && round < 15 {
+			hop = 20000 // 3 x 20 ms > 30 ms
+		}
+		for i := range 3 {
+			r.step(GotDecision{Now: r.now, Subject: i, Msg: turn.Decision{Fleet: "yard", Epoch: epoch, Round: round, Robot: uint32(i), HopUs: hop}})
+		}
+		for i := range 3 {
+			r.report(i, epoch, round, 1, 0)
+		}
+		acts := r.at(r.now + time.Second)
+		if round == 40 {
+			break
+		}
+		modes = append(modes, one[SendStart](t, acts).Msg.Mode)
+	}
+	// modes[k] is round k+2's mode, chosen after round k+1's decisions:
+	// round 5's slow hops make round 6 parallel; the monitor's window of
+	// four rounds brings hybrid back within six rounds of recovery.
+	if modes[3] != turn.Hybrid || modes[4] != turn.Parallel {
+		t.Fatalf("switch: %v", modes)
+	}
+	back := slices.Index(modes[5:], turn.Hybrid) + 5 + 2
+	if back < 16 || back > 21 {
+		t.Fatalf("hybrid again from round %d after recovery at round 15: %v", back, modes)
+	}
+}
+
 func TestAutoParallel(t *testing.T) {
 	cfg := config(t, 3)
 	cfg.AutoParallel, cfg.Period = true, 10*time.Millisecond
@@ -495,6 +555,8 @@ func TestConfigValidate(t *testing.T) {
 		{func(c *Config) { c.Decide.Samples = 1 << 30 }, "--samples"},
 		{func(c *Config) { c.Decide.Horizon = -1 }, "--horizon -1"},
 		{func(c *Config) { c.Mode = 0 }, "--mode"},
+		{func(c *Config) { c.AutoParallel = true }, "--mode auto needs a --period"},
+		{func(c *Config) { c.AutoParallel, c.Period, c.Mode = true, time.Second, turn.Parallel }, "--mode auto runs hybrid"},
 		{func(c *Config) { c.Guess = "psychic" }, "--guess"},
 		{func(c *Config) { c.TurnBudget = 0 }, "--turn-deadline"},
 		{func(c *Config) { c.TurnBudget = time.Hour }, "--turn-deadline"},

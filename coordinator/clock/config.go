@@ -52,8 +52,9 @@ type Config struct {
 	// Order is the preferred turn order (nil: 0..m-1); robots that are not
 	// alive are skipped.
 	Order Order
-	// AutoParallel switches a round to parallel mode when the measured
-	// links cannot fit a sequential round in the period.
+	// AutoParallel (--mode auto) runs hybrid rounds and switches a round
+	// to parallel when the measured links cannot fit a sequential round in
+	// the period, and back once they can.
 	AutoParallel bool
 }
 
@@ -82,7 +83,11 @@ func (c Config) Validate() error {
 	case len(c.Sender) > turn.MaxName || len(c.Fleet) > turn.MaxName:
 		return fmt.Errorf("--fleet %q: at most %d bytes", c.Fleet, turn.MaxName)
 	case c.Mode != turn.Sequential && c.Mode != turn.Parallel && c.Mode != turn.Hybrid:
-		return fmt.Errorf("--mode %q: use sequential, parallel or hybrid", c.Mode)
+		return fmt.Errorf("--mode %q: use sequential, parallel, hybrid or auto", c.Mode)
+	case c.AutoParallel && c.Mode != turn.Hybrid:
+		return fmt.Errorf("--mode auto runs hybrid rounds and switches them to parallel; it cannot start from %s", c.Mode)
+	case c.AutoParallel && c.Period <= 0:
+		return errors.New("--mode auto needs a --period: it switches to parallel when a sequential round would not fit in it")
 	case !slices.Contains(signal.Names(), c.Guess):
 		return fmt.Errorf("--guess %q: use one of %s", c.Guess, strings.Join(signal.Names(), ", "))
 	case c.TurnBudget <= 0 || c.TurnBudget*time.Duration(m) > turn.MaxDeadline:
@@ -139,9 +144,8 @@ func (c Config) order(m int) []int {
 // (RegisterSeed), `sim fleet`'s the run seed it derives the fleet seed from.
 func (c *Config) RegisterFlags(fs *flag.FlagSet) {
 	c.Decide.RegisterFlags(fs)
-	fs.Var(&c.Mode, "mode", "sequential, parallel or hybrid")
+	fs.Var(modeFlag{c}, "mode", "sequential, parallel, hybrid, or auto (hybrid that switches to parallel while measured links cannot fit a sequential round in --period)")
 	fs.StringVar(&c.Guess, "guess", c.Guess, "the fleet's guess source for missing predecessors: "+strings.Join(signal.Names(), ", "))
-	fs.BoolVar(&c.AutoParallel, "auto-parallel", c.AutoParallel, "switch rounds to parallel when measured links are too slow for --period")
 	fs.DurationVar(&c.TurnBudget, "turn-deadline", c.TurnBudget, "time each turn gets; turn k is due (k+1) x this after the round starts")
 	fs.DurationVar(&c.Period, "period", c.Period, "start rounds at most this often (0: as soon as the previous round's reports are in)")
 	fs.IntVar(&c.Rounds, "rounds", c.Rounds, "stop after this many rounds (0: run until stopped)")
@@ -164,6 +168,36 @@ func (c Config) Args() []string {
 	var out []string
 	fs.VisitAll(func(f *flag.Flag) { out = append(out, "--"+f.Name+"="+f.Value.String()) })
 	return out
+}
+
+// modeFlag is --mode: a round mode, or auto (hybrid with AutoParallel).
+type modeFlag struct{ c *Config }
+
+func (m modeFlag) String() string {
+	if m.c == nil {
+		return ""
+	}
+	return ModeName(*m.c)
+}
+
+func (m modeFlag) Set(s string) error {
+	if s == "auto" {
+		m.c.Mode, m.c.AutoParallel = turn.Hybrid, true
+		return nil
+	}
+	if err := m.c.Mode.Set(s); err != nil {
+		return fmt.Errorf("%q: use sequential, parallel, hybrid or auto", s)
+	}
+	m.c.AutoParallel = false
+	return nil
+}
+
+// ModeName is the mode as --mode spells it ("auto" for AutoParallel).
+func ModeName(c Config) string {
+	if c.AutoParallel {
+		return "auto"
+	}
+	return c.Mode.String()
 }
 
 // Order is a turn order as a flag: comma-separated robot ids.

@@ -144,7 +144,7 @@ func Main(args []string) int {
 	defer srv.Close()
 	hb := hub.New(hcfg, shell.NATSBus{Conn: nc})
 	lg.Info("coordinator up", zap.String("fleet", c.Fleet), zap.String("scenario", m.Name()), zap.Int("robots", m.Robots()),
-		zap.String("nats", nc.ConnectedUrl()), zap.String("gossip", *gossip), zap.String("mode", cfg.Mode.String()),
+		zap.String("nats", nc.ConnectedUrl()), zap.String("gossip", *gossip), zap.String("mode", clock.ModeName(cfg)),
 		zap.String("guess", cfg.Guess), zap.String("digest", fl.Digest), zap.Uint64("epoch", hb.Epoch()))
 	if *guessModel != "" {
 		pub := &modelPublisher{file: *guessModel, m: m, nc: nc, bucket: shell.ModelBucket(c.Prefix, c.Fleet), hub: hb, lg: lg}

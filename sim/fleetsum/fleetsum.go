@@ -21,6 +21,11 @@ type Round struct {
 	Guessed   int // robots that decided with a guess
 	Held      int // robots without a decision (they hold)
 	LatencyUs uint64
+	// GuessedBy lists the robots that decided with a guess; Mode is the
+	// round's mode as the coordinator ran it (virtual fleet; "" when not
+	// known).
+	GuessedBy []int
+	Mode      string
 }
 
 // Controls is what the world carries out: Decided with holds as 0.

@@ -24,6 +24,7 @@ import (
 	"baton/coordinator/clock"
 	"baton/proto/wire"
 	"baton/signal"
+	"baton/sim/fault"
 	"baton/sim/fleetsum"
 	"baton/sim/model"
 	"baton/sim/world"
@@ -63,6 +64,12 @@ type Config struct {
 	// Wait is how long a robot's software waits for a round's close
 	// before holding (0: (m+2) turn budgets + 10 s, as sim fleet waits).
 	Wait time.Duration
+	// Faults are the drill's message faults (sim/fault), seeded with
+	// FaultSeed, applied to every delivery after Link; Slow faults add to
+	// the robots' turn times. Process faults are refused: they need real
+	// processes.
+	Faults    []fault.Spec
+	FaultSeed uint64
 }
 
 // Fleet is one virtual fleet run.
@@ -79,6 +86,11 @@ type Fleet struct {
 	now  time.Duration
 	seq  uint64
 	link *rand.Rand
+	// The fault layer, and a second one drawing the hops robots measure
+	// (apart, so measuring does not shift the messages' draws).
+	faults, probe *fault.Layer
+	late          uint64
+	modes         map[uint64]string // round -> mode, from the coordinator's closes
 
 	// The robots' software: waiting for round round's closes.
 	round   int
@@ -124,8 +136,20 @@ func New(cfg Config) (*Fleet, error) {
 	if cfg.Stale <= 0 {
 		cfg.Stale = 10 * time.Second
 	}
+	for i, s := range cfg.Faults {
+		if s.Kind.Process() {
+			return nil, fmt.Errorf("fault %d (%s): needs real processes, not the virtual fleet", i+1, s.Kind)
+		}
+		if err := s.Check(m, 0); err != nil {
+			return nil, fmt.Errorf("fault %d: %w", i+1, err)
+		}
+	}
 	f := &Fleet{cfg: cfg, m: fm, coord: clock.New(cfg.Clock), world: world.New(fm, cfg.World), sources: src, decider: decide.Reusing{M: fm},
-		link: rand.New(rand.NewPCG(cfg.Link.Seed, 0x6c696e6b))}
+		link: rand.New(rand.NewPCG(cfg.Link.Seed, 0x6c696e6b)), modes: map[uint64]string{}}
+	if len(cfg.Faults) > 0 {
+		f.faults = fault.New(cfg.FaultSeed, cfg.Faults)
+		f.probe = fault.New(cfg.FaultSeed^0x70726f6265, cfg.Faults)
+	}
 	for r := range m {
 		f.robots = append(f.robots, &robot{id: r, m: turn.New(turn.Config{Fleet: cfg.Clock.Fleet, Robot: r, Model: fm,
 			Digest: cfg.Clock.Digest, Sender: fmt.Sprintf("robot-%d", r), Stale: cfg.Stale})})
@@ -150,6 +174,18 @@ func (f *Fleet) Machine(r int) *turn.Machine { return f.robots[r].m }
 
 // Coordinator is the coordinator's machine.
 func (f *Fleet) Coordinator() *clock.Machine { return f.coord }
+
+// FaultStats is what the fault layer did (zero without faults).
+func (f *Fleet) FaultStats() fault.Stats {
+	if f.faults == nil {
+		return fault.Stats{}
+	}
+	return f.faults.Stats()
+}
+
+// Late counts valid decisions that came too late: after the receiving
+// robot's own turn, or after the coordinator closed the round.
+func (f *Fleet) Late() uint64 { return f.late + f.coord.Late() }
 
 // Run plays rounds rounds (the world carries out each as the robots'
 // software saw it), calling onRound after each; it returns the rounds.
@@ -236,8 +272,10 @@ func (f *Fleet) at(t time.Duration, do func()) {
 	heap.Push(&f.q, item{at: max(t, f.now), key: key, do: do})
 }
 
-// deliver schedules one delivery over the link model.
-func (f *Fleet) deliver(do func()) {
+// deliver schedules one delivery from endpoint from to endpoint to
+// (robots 0..m-1, fault.Coordinator) over the link model, then the fault
+// layer.
+func (f *Fleet) deliver(from, to int, do func()) {
 	if f.cfg.Link.Loss > 0 && f.link.Float64() < f.cfg.Link.Loss {
 		return
 	}
@@ -245,7 +283,27 @@ func (f *Fleet) deliver(do func()) {
 	if f.cfg.Link.Jitter > 0 {
 		d += time.Duration(f.link.Int64N(int64(f.cfg.Link.Jitter)))
 	}
-	f.at(f.now+d, do)
+	if f.faults == nil {
+		f.at(f.now+d, do)
+		return
+	}
+	v := f.faults.Deliver(f.faultRound(), from, to)
+	for c := range v.Copies {
+		f.at(f.now+d+v.After[c], do)
+	}
+}
+
+// faultRound is the round the fault schedule goes by: the coordinator's.
+func (f *Fleet) faultRound() int { return int(f.coord.Round()) }
+
+// hop is the one-way hop robot r measures to the bus now.
+func (f *Fleet) hop(r int) time.Duration {
+	d := f.cfg.Link.Hop + f.cfg.Link.Jitter/2
+	if f.probe != nil {
+		v := f.probe.Deliver(f.faultRound(), r, fault.Coordinator)
+		d += v.After[0]
+	}
+	return d
 }
 
 // ---- the coordinator ----
@@ -255,23 +313,28 @@ func (f *Fleet) coordStep(ev clock.Event) {
 		switch a := a.(type) {
 		case clock.SendStart:
 			data, _ := wire.EncodeStart(a.Msg)
-			f.toRobots(-1, func(r *robot) { f.robotReceive(r, 's', data, -1) })
+			f.toRobots(fault.Coordinator, func(r *robot) { f.robotReceive(r, 's', data, -1) })
 		case clock.SendClose:
 			data, _ := wire.EncodeClose(a.Msg)
-			f.toRobots(-1, func(r *robot) { f.robotReceive(r, 'c', data, -1) })
+			f.toRobots(fault.Coordinator, func(r *robot) { f.robotReceive(r, 'c', data, -1) })
 		case clock.SendHello:
 			data, _ := wire.EncodeHello(a.Msg)
-			f.toRobots(-1, func(r *robot) { f.robotReceive(r, 'h', data, -1) })
+			f.toRobots(fault.Coordinator, func(r *robot) { f.robotReceive(r, 'h', data, -1) })
 		case clock.Arm:
 			f.at(a.At, func() { f.coordStep(clock.Tick{Now: f.now}) })
+		case clock.Closed:
+			f.modes[a.Record.Round] = a.Record.Mode
+		case clock.Late:
+			// counted by the coordinator's machine
 		}
 	}
 }
 
-func (f *Fleet) toRobots(except int, do func(*robot)) {
+// toRobots delivers from endpoint from to every robot but itself.
+func (f *Fleet) toRobots(from int, do func(*robot)) {
 	for _, r := range f.robots {
-		if r.id != except {
-			f.deliver(func() { do(r) })
+		if r.id != from {
+			f.deliver(from, r.id, func() { do(r) })
 		}
 	}
 }
@@ -325,10 +388,11 @@ func (f *Fleet) robotApply(r *robot, acts []turn.Action) {
 		case turn.Compute:
 			f.computeTurn(r, a)
 		case turn.Publish:
+			a.Decision.HopUs = uint64(f.hop(r.id) / time.Microsecond)
 			data, _ := wire.EncodeDecision(a.Decision)
 			send := func() {
 				f.toRobots(r.id, func(to *robot) { f.robotReceive(to, 'd', data, r.id) })
-				f.deliver(func() {
+				f.deliver(r.id, fault.Coordinator, func() {
 					d, err := wire.Decision(data)
 					if err == nil {
 						f.coordStep(clock.GotDecision{Now: f.now, Subject: r.id, Msg: d})
@@ -342,6 +406,8 @@ func (f *Fleet) robotApply(r *robot, acts []turn.Action) {
 			}
 		case turn.SendReport:
 			f.sendReport(r, a.Report)
+		case turn.Late:
+			f.late++
 		}
 	}
 }
@@ -351,7 +417,7 @@ func (f *Fleet) sendReport(r *robot, rep turn.Report) {
 	if err != nil {
 		return
 	}
-	f.deliver(func() {
+	f.deliver(r.id, fault.Coordinator, func() {
 		o, err := wire.Report(data)
 		if err == nil {
 			f.coordStep(clock.GotReport{Now: f.now, Subject: r.id, Msg: o})
@@ -366,6 +432,9 @@ func (f *Fleet) computeTurn(r *robot, c turn.Compute) {
 	cfg := c.Params.Decide()
 	known := c.Known
 	took := f.cfg.TurnTime
+	if f.faults != nil {
+		took += f.faults.SlowBy(int(c.Round), r.id)
+	}
 	if len(c.Guess) > 0 {
 		known = append([]int(nil), c.Known...)
 		ctx := &signal.Context{X: c.State, Round: c.Round, Order: c.Order, Robot: r.id, Known: c.Known, Last: c.Last,
@@ -453,6 +522,7 @@ func (f *Fleet) maybeStep() {
 			res.Decided[i] = v.Control
 			if len(v.Guessed) > 0 {
 				res.Guessed++
+				res.GuessedBy = append(res.GuessedBy, i)
 			}
 		}
 		res.LatencyUs = max(res.LatencyUs, v.LatencyUs)
@@ -462,6 +532,8 @@ func (f *Fleet) maybeStep() {
 		// software waited for it.
 		res.LatencyUs = uint64((f.now - f.started) / time.Microsecond)
 	}
+	res.Mode = f.modes[uint64(f.round)]
+	delete(f.modes, uint64(f.round))
 	u := res.Controls()
 	res.Cost = f.world.Apply(u)
 	f.results = append(f.results, res)
