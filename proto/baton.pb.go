@@ -247,7 +247,12 @@ type RoundStart struct {
 	// Epoch identifies one run of the coordinator (its start time): a
 	// restarted coordinator numbers rounds from 1 again, and robots that see
 	// a new epoch start over instead of taking its rounds for stale ones.
-	Epoch         uint64 `protobuf:"varint,12,opt,name=epoch,proto3" json:"epoch,omitempty"`
+	Epoch uint64 `protobuf:"varint,12,opt,name=epoch,proto3" json:"epoch,omitempty"`
+	// age_us: how long ago the round started when this copy was sent. The
+	// coordinator repeats a round start while turns are missing (a robot may
+	// have lost it); a robot that first hears a repeat counts its deadlines
+	// from the round's start, not from the repeat. 0 on the first copy.
+	AgeUs         uint64 `protobuf:"varint,13,opt,name=age_us,json=ageUs,proto3" json:"age_us,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -362,6 +367,13 @@ func (x *RoundStart) GetGuessSource() string {
 func (x *RoundStart) GetEpoch() uint64 {
 	if x != nil {
 		return x.Epoch
+	}
+	return 0
+}
+
+func (x *RoundStart) GetAgeUs() uint64 {
+	if x != nil {
+		return x.AgeUs
 	}
 	return 0
 }
@@ -828,7 +840,7 @@ const file_baton_proto_rawDesc = "" +
 	"\ahorizon\x18\x02 \x01(\x05R\ahorizon\x12#\n" +
 	"\rterminal_cost\x18\x03 \x01(\bR\fterminalCost\x12\x1d\n" +
 	"\n" +
-	"fleet_seed\x18\x04 \x01(\x04R\tfleetSeed\"\x99\x03\n" +
+	"fleet_seed\x18\x04 \x01(\x04R\tfleetSeed\"\xb0\x03\n" +
 	"\n" +
 	"RoundStart\x12\x14\n" +
 	"\x05fleet\x18\x01 \x01(\tR\x05fleet\x12\x14\n" +
@@ -843,7 +855,8 @@ const file_baton_proto_rawDesc = "" +
 	"\x0fscenario_digest\x18\n" +
 	" \x01(\tR\x0escenarioDigest\x12!\n" +
 	"\fguess_source\x18\v \x01(\tR\vguessSource\x12\x14\n" +
-	"\x05epoch\x18\f \x01(\x04R\x05epoch\"\xfa\x01\n" +
+	"\x05epoch\x18\f \x01(\x04R\x05epoch\x12\x15\n" +
+	"\x06age_us\x18\r \x01(\x04R\x05ageUs\"\xfa\x01\n" +
 	"\bDecision\x12\x14\n" +
 	"\x05fleet\x18\x01 \x01(\tR\x05fleet\x12\x14\n" +
 	"\x05round\x18\x02 \x01(\x04R\x05round\x12\x14\n" +

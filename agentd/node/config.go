@@ -39,9 +39,6 @@ type Config struct {
 	// GuessMargin is what recompute leaves before this robot's own turn
 	// deadline, besides the measured hop and its own turn.
 	GuessMargin time.Duration
-	// InjectDelay holds back this robot's own decision publishes: fault
-	// injection in our own message layer, for drills and tests.
-	InjectDelay time.Duration
 	// Stale: with no round start admitted for this long the robot holds.
 	Stale   time.Duration
 	Log     *zap.Logger
@@ -75,8 +72,6 @@ func (c Config) Validate() error {
 		return fmt.Errorf("--guess %q: use one of %s", c.Guess, strings.Join(signal.Names(), ", "))
 	case c.GuessMargin < 0 || c.GuessMargin > turn.MaxDeadline:
 		return fmt.Errorf("--guess-margin %s: want 0 up to %s", c.GuessMargin, turn.MaxDeadline)
-	case c.InjectDelay < 0 || c.InjectDelay > turn.MaxDeadline:
-		return fmt.Errorf("--inject-delay %s: want 0 up to %s", c.InjectDelay, turn.MaxDeadline)
 	case c.Stale <= 0 || c.Stale > MaxStale:
 		return fmt.Errorf("--stale %s: want more than 0 and at most %s", c.Stale, MaxStale)
 	case len(c.Sender) > turn.MaxName || len(c.Fleet) > turn.MaxName:
@@ -91,6 +86,5 @@ func (c *Config) RegisterFlags(fs *flag.FlagSet) {
 	fs.StringVar(&c.Guess, "guess", c.Guess, "fallback guess source, used when a round start names none or one this robot cannot make: "+
 		strings.Join(signal.Names(), ", ")+" (the coordinator's --guess picks the fleet's)")
 	fs.DurationVar(&c.GuessMargin, "guess-margin", c.GuessMargin, "what recompute guesses leave before this robot's turn deadline, besides the hop and its own turn")
-	fs.DurationVar(&c.InjectDelay, "inject-delay", c.InjectDelay, "fault injection: hold back this robot's decisions by this long")
 	fs.DurationVar(&c.Stale, "stale", c.Stale, "hold when no round start has been admitted for this long")
 }

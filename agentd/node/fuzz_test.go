@@ -40,8 +40,8 @@ func FuzzObservationBody(f *testing.F) {
 			return
 		}
 		mc := turn.New(turn.Config{Fleet: "yard", Robot: 1, Model: m, Sender: "r1"})
-		if s, err := mc.Observe(0, rep.Round, rep.Position, rep.Applied, rep.Seen); err == nil && s.Report.Robot != 1 {
-			t.Fatalf("%+v", s)
+		if acts, err := mc.Observe(0, rep.Round, rep.Position, rep.Applied, rep.Seen); err == nil && acts[0].(turn.SendReport).Report.Robot != 1 {
+			t.Fatalf("%+v", acts)
 		}
 	})
 }

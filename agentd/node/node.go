@@ -199,7 +199,7 @@ func (n *Node) apply(acts []turn.Action) {
 		switch a := acts[i].(type) {
 		case turn.Arm:
 			d := a.At - n.now()
-			ev := turn.Timer{Epoch: a.Epoch, Round: a.Round}
+			ev := turn.Timer{Epoch: a.Epoch, Round: a.Round, Kind: a.Kind}
 			time.AfterFunc(max(d, 0), func() {
 				select {
 				case n.timers <- ev:
@@ -261,7 +261,9 @@ func (n *Node) compute(c turn.Compute) []turn.Action {
 
 func (n *Node) publish(p turn.Publish) {
 	d := p.Decision
-	n.cfg.Metrics.TurnLatency.WithLabelValues(p.Mode.String()).Observe(p.Since.Seconds())
+	if !p.Repeat {
+		n.cfg.Metrics.TurnLatency.WithLabelValues(p.Mode.String()).Observe(p.Since.Seconds())
+	}
 	d.HopUs = uint64(n.hop.Load() / 1000)
 	data, err := wire.EncodeDecision(d)
 	if err != nil {
@@ -272,17 +274,12 @@ func (n *Node) publish(p turn.Publish) {
 	if len(d.Guessed) > 0 {
 		guessed = "yes"
 	}
-	n.cfg.Metrics.Turns.WithLabelValues(guessed).Inc()
-	subj := n.cfg.Subjects.DecisionOf(n.cfg.Robot)
-	send := func() {
-		if err := n.bus.Publish(subj, data); err != nil {
-			n.cfg.Log.Warn("publish decision", zap.Uint64("round", d.Round), zap.Error(err))
-		}
+	if !p.Repeat {
+		n.cfg.Metrics.Turns.WithLabelValues(guessed).Inc()
 	}
-	if n.cfg.InjectDelay > 0 {
-		time.AfterFunc(n.cfg.InjectDelay, send)
-	} else {
-		send()
+	subj := n.cfg.Subjects.DecisionOf(n.cfg.Robot)
+	if err := n.bus.Publish(subj, data); err != nil {
+		n.cfg.Log.Warn("publish decision", zap.Uint64("round", d.Round), zap.Error(err))
 	}
 }
 

@@ -161,7 +161,7 @@ func TestBadInputOverNATS(t *testing.T) {
 			r.pub(r.subj.Close, &pb.RoundClose{Fleet: "yard", Round: 5, Controls: []int32{-99, 0, 0, 0}})
 		}},
 		{"close of a round not started", "future", func() {
-			r.pub(r.subj.Close, &pb.RoundClose{Fleet: "yard", Round: 6, Controls: []int32{0, 0, 0, 0}})
+			r.pub(r.subj.Close, &pb.RoundClose{Fleet: "yard", Round: 7, Controls: []int32{0, 0, 0, 0}})
 		}},
 		{"malformed round start", "malformed", func() { r.nc.Publish(r.subj.Round, []byte("not protobuf")); r.nc.Flush() }},
 		{"round start for another fleet", "foreign", func() { r.start(6, []uint32{0, 1}, func(rs *pb.RoundStart) { rs.Fleet = "dock" }) }},

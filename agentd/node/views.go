@@ -96,12 +96,12 @@ var ErrBadReport = errors.New("bad observation")
 // coordinator; the machine keeps it to re-send when a coordinator asks.
 func (n *Node) Observe(rep Report) error {
 	n.mu.Lock()
-	s, err := n.machine.Observe(n.now(), rep.Round, rep.Position, rep.Applied, rep.Seen)
+	acts, err := n.machine.Observe(n.now(), rep.Round, rep.Position, rep.Applied, rep.Seen)
 	n.mu.Unlock()
 	if err != nil {
 		return fmt.Errorf("%w: %v", ErrBadReport, err)
 	}
-	n.sendReport(s.Report)
+	n.apply(acts)
 	return nil
 }
 

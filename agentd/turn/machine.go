@@ -17,6 +17,8 @@ type Counters struct {
 	Drops   map[DropReason]uint64
 	Late    uint64
 	Resyncs uint64
+	// Repeats: copies of starts, decisions and closes already had.
+	Repeats uint64
 }
 
 // Dropped is the total over all reasons.
@@ -118,6 +120,15 @@ type Machine struct {
 	resentAt time.Duration
 	resent   bool
 
+	// Repeats (see RepeatEvery): the decision published this round and
+	// how many copies of it and of the report went out.
+	pub                    *Decision
+	pubRepeats, repRepeats int
+	repeats                uint64 // repeated copies received and ignored
+	// missed: the next round closed before its start got here (every
+	// copy lost), so the robot's software need not wait for it.
+	missed uint64
+
 	drops   map[DropReason]uint64
 	late    uint64
 	resyncs uint64
@@ -147,7 +158,7 @@ func (m *Machine) Epoch() uint64 { return m.epoch }
 
 // Counters returns a snapshot of the drop, late and resync counts.
 func (m *Machine) Counters() Counters {
-	c := Counters{Drops: make(map[DropReason]uint64, len(m.drops)), Late: m.late, Resyncs: m.resyncs}
+	c := Counters{Drops: make(map[DropReason]uint64, len(m.drops)), Late: m.late, Resyncs: m.resyncs, Repeats: m.repeats}
 	for r, n := range m.drops {
 		c.Drops[r] = n
 	}
@@ -196,6 +207,10 @@ func (m *Machine) onStart(e GotStart) []Action {
 	case s.Round == 0:
 		return m.drop(DropMalformed, who, "round 0: rounds start at 1")
 	}
+	if m.following && s.Epoch == m.epoch && s.Round == m.cur.round && s.AgeUs > 0 {
+		m.repeats++ // a repeat of the round in play: it arrived before
+		return nil
+	}
 	cur, reason, why := m.checkStart(s)
 	if reason != "" {
 		return m.drop(reason, who, "round %d: %s", s.Round, why)
@@ -204,7 +219,8 @@ func (m *Machine) onStart(e GotStart) []Action {
 	if d != nil {
 		return []Action{*d}
 	}
-	cur.at = e.Now
+	// A repeat heard first: the round began AgeUs before it was sent.
+	cur.at = e.Now - time.Duration(min(s.AgeUs, uint64(MaxDeadline/time.Microsecond)))*time.Microsecond
 	return m.begin(cur, s, newRun, resync)
 }
 
@@ -328,6 +344,7 @@ func (m *Machine) begin(c current, s Start, newRun, resync bool) []Action {
 		m.heard[r] = -1
 	}
 	m.heardAsk, m.guessAsk, m.phase, m.k = nil, nil, idle, 0
+	m.pub, m.pubRepeats = nil, 0
 	// Keep the last History rounds; after a resync backwards, drop the
 	// rounds "ahead" that the bad start made.
 	for r := range m.hist {
@@ -452,7 +469,8 @@ func (m *Machine) onDecision(e GotDecision) []Action {
 	}
 	switch h := m.heard[robot]; {
 	case h == int(d.Control) || h == conflicted:
-		return m.drop(DropDuplicate, sender, "second decision from robot %d for round %d", robot, d.Round)
+		m.repeats++ // robots repeat their decisions until the close
+		return nil
 	case h >= 0:
 		// Two different decisions for one robot: one is forged. Use
 		// neither, unless this robot already decided with the first.
@@ -508,7 +526,7 @@ func (m *Machine) onOtherRound(d Decision, robot int, sender string) []Action {
 	case had == noEarly:
 		m.next[robot] = int64(d.Control)
 	case had == int64(d.Control) || had == earlyConflict:
-		acts = append(acts, m.drop(DropDuplicate, sender, "second decision from robot %d for round %d", robot, d.Round)...)
+		m.repeats++
 	default:
 		m.next[robot] = earlyConflict
 		acts = append(acts, m.drop(DropDuplicate, sender, "robot %d sent control %d and then %d for round %d: neither is used (one is not the robot's)", robot, had, d.Control, d.Round)...)
@@ -525,7 +543,13 @@ func (m *Machine) clearNext(epoch, round uint64) {
 }
 
 func (m *Machine) onTimer(e Timer) []Action {
-	// Only a hybrid wait has a timer; a sequential one waits for its
+	switch e.Kind {
+	case RepeatDecision:
+		return m.repeatDecision(e)
+	case RepeatReport:
+		return m.repeatReport(e)
+	}
+	// Only a hybrid wait has a deadline; a sequential one waits for its
 	// predecessors or the close.
 	if !m.following || e.Epoch != m.epoch || e.Round != m.cur.round || m.phase != waiting || m.cur.mode != Hybrid {
 		return nil
@@ -552,10 +576,48 @@ func (m *Machine) onComputed(e Computed) []Action {
 		us = uint64(e.Took / time.Microsecond)
 	}
 	ent.decided, ent.control, ent.heard, ent.guessed = true, e.Control, m.heardAsk, m.guessAsk
-	return []Action{Publish{Decision: Decision{
+	d := Decision{
 		Fleet: m.cfg.Fleet, Epoch: m.epoch, Round: m.cur.round, Robot: uint32(m.cfg.Robot), Control: int32(e.Control),
 		Heard: m.heardAsk, Guessed: m.guessAsk, ComputeUs: us, Sender: m.cfg.Sender,
-	}, Mode: m.cur.mode, Since: e.Now - m.cur.at}}
+	}
+	m.pub, m.pubRepeats = &d, 0
+	return []Action{Publish{Decision: d, Mode: m.cur.mode, Since: e.Now - m.cur.at},
+		Arm{Epoch: m.epoch, Round: m.cur.round, Kind: RepeatDecision, At: e.Now + m.repeatEvery()}}
+}
+
+func (m *Machine) repeatEvery() time.Duration {
+	if !m.following || len(m.cur.deadlines) == 0 {
+		return ReportRepeat
+	}
+	return RepeatEvery(m.cur.deadlines[0])
+}
+
+// repeatDecision sends this round's decision again while no close came.
+func (m *Machine) repeatDecision(e Timer) []Action {
+	if !m.following || e.Epoch != m.epoch || e.Round != m.cur.round || m.pub == nil || m.pubRepeats >= MaxRepeats {
+		return nil
+	}
+	if ent := m.hist[m.cur.round]; ent == nil || ent.closed {
+		return nil
+	}
+	m.pubRepeats++
+	return []Action{Publish{Decision: *m.pub, Mode: m.cur.mode, Since: e.Now - m.cur.at, Repeat: true},
+		Arm{Epoch: m.epoch, Round: m.cur.round, Kind: RepeatDecision, At: e.Now + m.repeatEvery()}}
+}
+
+// repeatReport sends the latest report again until a round after it
+// starts (or a newer run does).
+func (m *Machine) repeatReport(e Timer) []Action {
+	r := m.report
+	if r == nil || r.Epoch != e.Epoch || r.Round != e.Round || m.repRepeats >= MaxRepeats {
+		return nil
+	}
+	if m.following && (m.epoch != r.Epoch || m.cur.round > r.Round) {
+		return nil // the coordinator moved on: it has it, or did without
+	}
+	m.repRepeats++
+	return []Action{SendReport{Report: *r, Resent: true},
+		Arm{Epoch: r.Epoch, Round: r.Round, Kind: RepeatReport, At: e.Now + m.repeatEvery()}}
 }
 
 // ---- closes ----
@@ -572,6 +634,11 @@ func (m *Machine) onClose(e GotClose) []Action {
 		return m.drop(DropFuture, who, "close of round %d before any round started here", c.Round)
 	case c.Epoch < m.epoch:
 		return m.drop(DropStale, who, "close from an older coordinator run (epoch %d, following %d)", c.Epoch, m.epoch)
+	case c.Epoch == m.epoch && c.Round == m.cur.round+1:
+		// The start of this round never got here, and it is over: the
+		// robot held through it. Nothing in the close is used.
+		m.missed = c.Round
+		return nil
 	case c.Epoch > m.epoch || c.Round > m.cur.round:
 		return m.drop(DropFuture, who, "close of round %d of run %d, which has not started here (current: round %d of run %d)", c.Round, c.Epoch, m.cur.round, m.epoch)
 	}
@@ -602,6 +669,10 @@ func (m *Machine) onClose(e GotClose) []Action {
 		held[h] = true
 	}
 	if ent.closed {
+		if ent.closeCtl == int(c.Controls[m.cfg.Robot]) && ent.held == held[m.cfg.Robot] {
+			m.repeats++ // the coordinator repeats closes until it has every report
+			return nil
+		}
 		return m.drop(DropDuplicate, who, "round %d already closed", c.Round)
 	}
 	if own := m.cfg.Robot; !held[own] && (!ent.decided || ent.control != int(c.Controls[own])) {
@@ -652,9 +723,19 @@ func (m *Machine) onHello(e GotHello) []Action {
 }
 
 // Observe checks a report from the robot's own software (what it carried
-// out and saw) and returns it to send; the machine keeps it to re-send when
-// a coordinator asks. Errors name what is wrong with the report.
-func (m *Machine) Observe(now time.Duration, round uint64, position int32, applied int, seen []model.Sighting) (SendReport, error) {
+// out and saw) and returns what to do: send it, and arm its repeat; the
+// machine keeps it to re-send when a coordinator asks. Errors name what is
+// wrong with the report.
+func (m *Machine) Observe(now time.Duration, round uint64, position int32, applied int, seen []model.Sighting) ([]Action, error) {
+	s, err := m.observe(round, position, applied, seen)
+	if err != nil {
+		return nil, err
+	}
+	m.repRepeats = 0
+	return []Action{s, Arm{Epoch: s.Report.Epoch, Round: s.Report.Round, Kind: RepeatReport, At: now + m.repeatEvery()}}, nil
+}
+
+func (m *Machine) observe(round uint64, position int32, applied int, seen []model.Sighting) (SendReport, error) {
 	mdl := m.cfg.Model
 	switch {
 	case len(seen) > MaxSightings:
@@ -727,6 +808,9 @@ func (m *Machine) View(now time.Duration, round uint64, closed bool) View {
 	}
 	ent := m.hist[round]
 	if ent == nil {
+		if round == m.missed && round == m.cur.round+1 {
+			return hold(true, "round %d closed before its start got here (lost on the way)", round)
+		}
 		if round > m.cur.round {
 			return hold(false, "round %d has not started here (current round %d)", round, m.cur.round)
 		}

@@ -349,7 +349,10 @@ func TestEarlyDecisions(t *testing.T) {
 	r := newRig(t)
 	r.step(GotStart{Now: 0, Msg: r.start(7, 5, Sequential)})
 	r.step(heard(1, dec(7, 6, 0, 2)))
-	dropOf(t, r.step(heard(1, dec(7, 6, 0, 2))), DropDuplicate)
+	// The same decision again is a repeat (robots repeat until the close).
+	if acts := r.step(heard(1, dec(7, 6, 0, 2))); len(acts) != 0 || r.m.Counters().Repeats != 1 {
+		t.Fatalf("repeat: %v, %d repeats", acts, r.m.Counters().Repeats)
+	}
 	c := only[Compute](t, r.step(GotStart{Now: 2, Msg: r.start(7, 6, Sequential)}))
 	if c.Known[0] != 2 {
 		t.Fatalf("%+v", c)
@@ -384,7 +387,7 @@ func TestBadCloses(t *testing.T) {
 		want DropReason
 	}{
 		{"foreign", cl(5, func(c *Close) { c.Fleet = "x" }), DropForeign},
-		{"future", cl(6, nil), DropFuture},
+		{"future", cl(7, nil), DropFuture},
 		{"far future", cl(1<<60, nil), DropFuture},
 		{"newer run", cl(5, func(c *Close) { c.Epoch = 8 }), DropFuture},
 		{"older run", cl(5, func(c *Close) { c.Epoch = 6 }), DropStale},
@@ -416,7 +419,10 @@ func TestBadCloses(t *testing.T) {
 	if acts := r.step(agree); len(acts) != 0 {
 		t.Fatal(acts)
 	}
-	dropOf(t, r.step(agree), DropDuplicate)
+	if acts := r.step(agree); len(acts) != 0 || r.m.Counters().Repeats != 1 {
+		t.Fatalf("a repeated close: %v", acts) // the coordinator repeats closes until every report is in
+	}
+	dropOf(t, r.step(cl(5, func(c *Close) { c.Controls[1] = 3; c.Held = []uint32{1} })), DropDuplicate)
 	if v := r.m.View(2, 5, true); !v.Closed || v.Control != 3 || v.Action != "E" || v.Hold {
 		t.Fatalf("%+v", v)
 	}
@@ -487,9 +493,16 @@ func TestReportsAndHello(t *testing.T) {
 			t.Errorf("report %+v: %v", bad, err)
 		}
 	}
-	s, err := r.m.Observe(1, 5, 3, 2, nil)
-	if err != nil || s.Report.Epoch != 7 || s.Report.Round != 5 || s.Report.Robot != 1 || s.Resent {
+	acts, err := r.m.Observe(1, 5, 3, 2, nil)
+	if err != nil {
+		t.Fatal(err)
+	}
+	s := only[SendReport](t, acts[:1])
+	if s.Report.Epoch != 7 || s.Report.Round != 5 || s.Report.Robot != 1 || s.Resent {
 		t.Fatalf("%+v %v", s, err)
+	}
+	if a := only[Arm](t, acts[1:]); a.Kind != RepeatReport || a.Round != 5 {
+		t.Fatalf("repeat %+v", a)
 	}
 	dropOf(t, r.step(GotHello{Now: 2, Msg: Hello{Fleet: "x"}}), DropForeign)
 	dropOf(t, hello(2, 6), DropStale)
@@ -578,4 +591,62 @@ func of[T Action](acts []Action) []T {
 		}
 	}
 	return out
+}
+
+// Lossy links: a robot repeats its decision until the close and its
+// report until the next round starts; a start heard first as a late copy
+// keeps the round's deadlines; a close for a round whose start was lost
+// ends the software's wait with a hold.
+func TestRepeats(t *testing.T) {
+	r := newRig(t)
+	s := r.start(7, 5, Hybrid)
+	s.AgeUs = 30000 // the first copy to arrive left 30 ms after the round began
+	acts := r.step(GotStart{Now: time.Second, Msg: s})
+	arm := only[Arm](t, acts)
+	if want := time.Second - 30*time.Millisecond + time.Duration(s.DeadlinesUs[0])*time.Microsecond; arm.At != want {
+		t.Fatalf("deadline at %v, want %v (from the round's start, not the copy's)", arm.At, want)
+	}
+	if acts := r.step(GotStart{Now: time.Second, Msg: s}); len(acts) != 0 || r.m.Counters().Repeats != 1 {
+		t.Fatalf("a second copy: %v", acts)
+	}
+	only[Compute](t, r.step(Timer{Now: arm.At, Epoch: 7, Round: 5}))
+	acts = r.step(Computed{Now: arm.At + 1, Epoch: 7, Round: 5, Control: 2})
+	pub, rep := only[Publish](t, acts[:1]), only[Arm](t, acts[1:])
+	if pub.Repeat || rep.Kind != RepeatDecision {
+		t.Fatalf("%+v %+v", pub, rep)
+	}
+	again := r.step(Timer{Now: rep.At, Epoch: 7, Round: 5, Kind: RepeatDecision})
+	if p := only[Publish](t, again[:1]); !p.Repeat || p.Decision.Control != 2 {
+		t.Fatalf("repeat %+v", p)
+	}
+	closeMsg := Close{Fleet: "yard", Epoch: 7, Round: 5, Sender: "coordinator", Controls: make([]int32, 4)}
+	closeMsg.Controls[1] = 2
+	r.step(GotClose{Now: rep.At + 1, Msg: closeMsg})
+	if acts := r.step(Timer{Now: rep.At + 2, Epoch: 7, Round: 5, Kind: RepeatDecision}); len(acts) != 0 {
+		t.Fatalf("repeating after the close: %v", acts)
+	}
+	obs, err := r.m.Observe(rep.At+3, 5, 3, 2, nil)
+	if err != nil {
+		t.Fatal(err)
+	}
+	ra := only[Arm](t, obs[1:])
+	if acts := r.step(Timer{Now: ra.At, Epoch: 7, Round: 5, Kind: RepeatReport}); len(only[SendReport](t, acts[:1]).Report.Seen) != 0 {
+		t.Fatal(acts)
+	}
+	// Round 6's start is lost; its close comes: the wait for round 6 ends.
+	if v := r.m.View(ra.At, 6, true); v.Done {
+		t.Fatalf("done before anything about round 6: %+v", v)
+	}
+	closeMsg.Round = 6
+	if acts := r.step(GotClose{Now: ra.At, Msg: closeMsg}); len(acts) != 0 {
+		t.Fatal(acts)
+	}
+	if v := r.m.View(ra.At, 6, true); !v.Done || !v.Hold || !strings.Contains(v.Reason, "before its start") {
+		t.Fatalf("%+v", v)
+	}
+	// Round 7 starts: the report of round 5 is no longer repeated.
+	r.step(GotStart{Now: ra.At + 1, Msg: r.start(7, 7, Parallel)})
+	if acts := r.step(Timer{Now: ra.At + 2, Epoch: 7, Round: 5, Kind: RepeatReport}); len(acts) != 0 {
+		t.Fatalf("report repeated after a newer round started: %v", acts)
+	}
 }

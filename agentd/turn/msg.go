@@ -39,6 +39,9 @@ type Start struct {
 	Digest       string // scenario file + robot count
 	Guess        string // guess source name
 	ModelVersion uint64 // guess model version robots should use (0: none)
+	// AgeUs: how long after the round began this copy was sent (repeats
+	// of a start for robots that may have lost it; 0 on the first).
+	AgeUs uint64
 }
 
 // Decision is one robot's choice for a round (robot -> robots, coordinator).
@@ -132,7 +135,23 @@ const (
 	History = 64
 	// HelloGap: a robot re-sends its report at most once per this long.
 	HelloGap = 200 * time.Millisecond
+	// Repeats: on lossy links every message that a round cannot do without
+	// is sent again until its receiver shows it arrived: the coordinator's
+	// round start until every turn is in, its close until every report is
+	// in; a robot's decision until the close, its report until the next
+	// round starts. Copies go every quarter of the first turn's deadline
+	// (at least RepeatMin; ReportRepeat before any round), at most
+	// MaxRepeats times per message.
+	RepeatMin    = time.Millisecond
+	ReportRepeat = 50 * time.Millisecond
+	MaxRepeats   = 32
 )
+
+// RepeatEvery is how often a round's messages are repeated, from its
+// first turn's deadline.
+func RepeatEvery(firstDeadline time.Duration) time.Duration {
+	return max(firstDeadline/4, RepeatMin)
+}
 
 // Decide is the effort as decide takes it: a robot's own turn and
 // recompute's guesses must use exactly the fleet's.

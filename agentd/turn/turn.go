@@ -96,6 +96,7 @@ type GotHello struct {
 type Timer struct {
 	Now          time.Duration
 	Epoch, Round uint64
+	Kind         TimerKind
 }
 
 // Computed: the driver finished the Compute the machine asked for.
@@ -116,12 +117,25 @@ func (Computed) isEvent()    {}
 // Action is one output of the machine.
 type Action interface{ isAction() }
 
-// Arm asks the driver to deliver Timer{Epoch, Round} at time At (same clock
-// as Now).
+// Arm asks the driver to deliver Timer{Epoch, Round, Kind} at time At
+// (same clock as Now).
 type Arm struct {
 	Epoch, Round uint64
 	At           time.Duration
+	Kind         TimerKind
 }
+
+// TimerKind says what a timer is for.
+type TimerKind uint8
+
+const (
+	// Deadline: a hybrid turn's wait for its predecessors ends.
+	Deadline TimerKind = iota
+	// RepeatDecision: send this robot's decision again (no close yet).
+	RepeatDecision
+	// RepeatReport: send this robot's report again (no next round yet).
+	RepeatReport
+)
 
 // Compute asks the driver to run this robot's rollout turn. Known[j] is the
 // control of robot j when it is a predecessor that was heard, -1 otherwise;
@@ -151,6 +165,9 @@ type Publish struct {
 	Decision Decision
 	Mode     Mode
 	Since    time.Duration
+	// Repeat: the same decision again, for peers or a coordinator that
+	// may have lost it (not a new turn).
+	Repeat bool
 }
 
 // SendReport asks the driver to send a report to the coordinator: the

@@ -74,11 +74,19 @@ func (Stop) isEvent()        {}
 // Action is one output of the machine.
 type Action interface{ isAction() }
 
-// SendStart publishes a round start.
-type SendStart struct{ Msg turn.Start }
+// SendStart publishes a round start; Repeat: a copy of the one in play,
+// for robots that may have lost it (Msg.AgeUs says how late it is).
+type SendStart struct {
+	Msg    turn.Start
+	Repeat bool
+}
 
-// SendClose publishes a round close.
-type SendClose struct{ Msg turn.Close }
+// SendClose publishes a round close; Repeat: a copy, for robots whose
+// reports have not come.
+type SendClose struct {
+	Msg    turn.Close
+	Repeat bool
+}
 
 // SendHello asks every robot for its latest report.
 type SendHello struct{ Msg turn.Hello }
@@ -226,6 +234,15 @@ type Machine struct {
 
 	armed time.Duration // the last tick asked for by arm
 
+	// Repeats (turn.RepeatEvery): the round's start and close as sent,
+	// when the next copy is due, and copies of robots' messages already had.
+	startMsg   turn.Start
+	closeMsg   turn.Close
+	repeatAt   time.Duration
+	sentCopies int
+	repeats    uint64
+	filedFrom  []bool // robots whose report the last filed round had
+
 	drops map[turn.DropReason]uint64
 	late  uint64
 }
@@ -239,7 +256,7 @@ func New(cfg Config) *Machine {
 	mon := turn.NewLinkMonitor(0, max(8, 4*robots), 0)
 	return &Machine{cfg: cfg, m: cfg.Model, robots: robots, monitor: mon, compute: turn.NewLinkMonitor(0, 0, 0), drops: map[turn.DropReason]uint64{},
 		gathered: make([]*turn.Report, robots), reports: make([]*turn.Report, robots), positions: make([]*turn.Report, robots),
-		got: make([]*turn.Decision, robots), conflict: make([]bool, robots), heldRun: make([]int, robots), stallRun: make([]int, robots),
+		got: make([]*turn.Decision, robots), filedFrom: make([]bool, robots), conflict: make([]bool, robots), heldRun: make([]int, robots), stallRun: make([]int, robots),
 		scratch: cfg.Model.NewState()}
 }
 
@@ -384,12 +401,27 @@ func (c *Machine) poll() []Action {
 			acts = append(acts, c.start(order)...)
 		case collecting:
 			if next, ok := c.settled(); !ok {
-				return append(acts, c.arm(next)...)
+				// Turns are missing: a robot may have lost the start.
+				if c.now >= c.repeatAt && c.sentCopies < turn.MaxRepeats {
+					s := c.startMsg
+					s.AgeUs = uint64(max(c.now-c.startAt, 0) / time.Microsecond)
+					acts = append(acts, SendStart{Msg: s, Repeat: true})
+					c.sentCopies++
+					c.repeatAt = c.now + c.repeatEvery()
+				}
+				return append(acts, c.arm(c.nextRepeat(next))...)
 			}
 			acts = append(acts, c.close()...)
+			c.sentCopies, c.repeatAt = 0, c.now+c.repeatEvery()
 		case reporting:
 			if !c.reportsIn() && c.now < c.closeAt+c.cfg.ReportWait {
-				return append(acts, c.arm(c.closeAt+c.cfg.ReportWait)...)
+				// Reports are missing: a robot may have lost the close.
+				if c.now >= c.repeatAt && c.sentCopies < turn.MaxRepeats {
+					acts = append(acts, SendClose{Msg: c.closeMsg, Repeat: true})
+					c.sentCopies++
+					c.repeatAt = c.now + c.repeatEvery()
+				}
+				return append(acts, c.arm(c.nextRepeat(c.closeAt+c.cfg.ReportWait))...)
 			}
 			acts = append(acts, c.file())
 			if c.cfg.Rounds > 0 && c.round >= uint64(c.cfg.Rounds) {
@@ -473,8 +505,32 @@ func (c *Machine) start(order []int) []Action {
 	msg := turn.Start{Fleet: c.cfg.Fleet, Epoch: c.cfg.Epoch, Round: c.round, Sender: c.cfg.Sender, Scenario: c.m.Name(),
 		Ints: ints, Reals: reals, Order: order32, DeadlinesUs: deadlinesUs, Mode: c.mode, Params: c.cfg.Params(),
 		Digest: c.cfg.Digest, Guess: c.cfg.Guess, ModelVersion: c.model}
+	c.startMsg, c.sentCopies, c.repeatAt = msg, 0, c.now+c.repeatEvery()
 	return append(acts, SendStart{Msg: msg})
 }
+
+func (c *Machine) repeatEvery() time.Duration { return turn.RepeatEvery(c.cfg.TurnBudget) }
+
+// lastFiled is the last round whose reports were filed (0: none).
+func (c *Machine) lastFiled() uint64 {
+	if c.phase == collecting || c.phase == reporting {
+		return c.round - 1
+	}
+	return c.round
+}
+
+// nextRepeat is the next tick: at, or the next copy's time if one is due
+// before it (none once MaxRepeats went out).
+func (c *Machine) nextRepeat(at time.Duration) time.Duration {
+	if c.sentCopies >= turn.MaxRepeats {
+		return at
+	}
+	return min(at, c.repeatAt)
+}
+
+// Repeats is how many copies of robots' decisions and reports arrived
+// after the first.
+func (c *Machine) Repeats() uint64 { return c.repeats }
 
 // settled: every robot in the order decided or is past its own deadline;
 // otherwise the next deadline still ahead.
@@ -564,6 +620,7 @@ func (c *Machine) close() []Action {
 	for r, u := range c.rec.Controls {
 		msg.Controls[r] = int32(u)
 	}
+	c.closeMsg = msg
 	return append(acts, SendClose{Msg: msg}, Closed{Record: c.rec})
 }
 
@@ -589,6 +646,7 @@ func (c *Machine) file() Filed {
 	c.rec.Stage = c.m.Advance(c.x, u)
 	c.rec.Reports, c.rec.Missing = 0, []int{}
 	for r, o := range c.reports {
+		c.filedFrom[r] = o != nil
 		if o != nil {
 			c.rec.Reports++
 			c.absorb(r, o)
@@ -650,7 +708,14 @@ func (c *Machine) onDecision(e GotDecision) []Action {
 	case d.Round > c.round:
 		return c.drop(turn.DropFuture, who, "decision for round %d of run %d; this is round %d of run %d", d.Round, d.Epoch, c.round, c.cfg.Epoch)
 	case d.Round < c.round:
+		if d.Round+1 == c.round {
+			c.repeats++ // a robot repeats its decision until it hears the close
+			return nil
+		}
 		return c.drop(turn.DropStale, who, "decision for round %d during round %d", d.Round, c.round)
+	case c.phase != collecting && c.got[d.Robot] != nil && c.got[d.Robot].Control == d.Control:
+		c.repeats++
+		return nil
 	case c.phase != collecting:
 		c.late++
 		return []Action{Late{Robot: int(d.Robot), Round: d.Round}}
@@ -664,7 +729,8 @@ func (c *Machine) onDecision(e GotDecision) []Action {
 	case c.conflict[r]:
 		return c.drop(turn.DropDuplicate, who, "another decision from robot %d in round %d, whose decisions conflict", r, c.round)
 	case c.got[r] != nil && c.got[r].Control == d.Control:
-		return c.drop(turn.DropDuplicate, who, "second decision from robot %d in round %d", r, c.round)
+		c.repeats++
+		return nil
 	case c.got[r] != nil:
 		// One of the two is forged: take neither, and the robot holds
 		// (its own machine refuses a close that gives it a control it
@@ -714,10 +780,18 @@ func (c *Machine) onReport(e GotReport) []Action {
 	position := o.Round == 0 || o.Epoch != c.cfg.Epoch
 	if !position {
 		switch {
-		case o.Round < c.round || (o.Round == c.round && c.phase != collecting && c.phase != reporting):
+		case o.Round == c.lastFiled() && !c.filedFrom[r] && c.positions[r] == nil:
+			position = true // late for its round: still where the robot is
+		case o.Round == c.lastFiled():
+			c.repeats++ // robots repeat reports until the next round starts
+			return nil
+		case o.Round < c.round:
 			return c.drop(turn.DropStale, who, "report for round %d during round %d", o.Round, c.round)
 		case o.Round > c.round:
 			return c.drop(turn.DropFuture, who, "report for round %d during round %d", o.Round, c.round)
+		case c.reports[r] != nil && c.reports[r].Position == o.Position && c.reports[r].Applied == o.Applied:
+			c.repeats++
+			return nil
 		case c.reports[r] != nil:
 			return c.drop(turn.DropDuplicate, who, "second report for round %d", o.Round)
 		}

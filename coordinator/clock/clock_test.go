@@ -338,11 +338,16 @@ func TestBadDecisions(t *testing.T) {
 		dropped(t, r.step(c.ev), c.want)
 	}
 	r.step(d(func(*GotDecision) {}))
-	dropped(t, r.step(d(func(*GotDecision) {})), turn.DropDuplicate)
+	// The same decision again is a repeat: robots repeat until the close.
+	if acts := r.step(d(func(*GotDecision) {})); len(acts) != 0 || r.c.Repeats() != 1 {
+		t.Fatalf("repeat: %v", acts)
+	}
 	r.decide(1, 1, 0)
 	r.report(0, epoch, 1, 11, 0)
 	r.report(1, epoch, 1, 11, 0) // round 2 starts
-	dropped(t, r.decide(0, 1, 0), turn.DropStale)
+	if acts := r.decide(0, 1, 0); len(acts) != 0 || r.c.Repeats() != 2 {
+		t.Fatalf("a repeat of the last round's decision: %v", acts)
+	}
 }
 
 func TestBadReports(t *testing.T) {
@@ -370,7 +375,10 @@ func TestBadReports(t *testing.T) {
 		dropped(t, r.step(c.ev), c.want)
 	}
 	r.step(rep(func(*GotReport) {}))
-	dropped(t, r.step(rep(func(*GotReport) {})), turn.DropDuplicate)
+	if acts := r.step(rep(func(*GotReport) {})); len(acts) != 0 {
+		t.Fatalf("a repeated report: %v", acts)
+	}
+	dropped(t, r.step(rep(func(e *GotReport) { e.Msg.Position = 4 })), turn.DropDuplicate)
 	// Reports close the round only once it settles, and the missing ones
 	// wait ReportWait.
 	r.decide(0, 1, 0)
@@ -384,7 +392,14 @@ func TestBadReports(t *testing.T) {
 	if f := one[Filed](t, acts).Record; !slices.Equal(f.Missing, []int{0, 1}) || f.Reports != 1 {
 		t.Fatalf("%+v", f)
 	}
-	dropped(t, r.report(0, epoch, 1, 3, 0), turn.DropStale)
+	// Robot 0's report comes late: where it is, taken at the next filing;
+	// copies of it and of robot 2's filed one are repeats.
+	if acts := r.report(0, epoch, 1, 3, 0); len(acts) != 0 || r.c.positions[0] == nil {
+		t.Fatalf("a late report: %v", acts)
+	}
+	if acts := r.report(2, epoch, 1, 3, 0); len(acts) != 0 || r.c.positions[2] != nil {
+		t.Fatalf("a repeat of a filed report: %v", acts)
+	}
 }
 
 // A robot that comes back mid-run says where it is (round 0, or its old
@@ -626,5 +641,45 @@ func TestNewerRunWarned(t *testing.T) {
 	}
 	if n != 1 {
 		t.Fatalf("%d warnings: %+v", n, notes)
+	}
+}
+
+// Lossy links: the coordinator repeats a round's start while turns are
+// missing and its close while reports are missing, at most MaxRepeats
+// copies each; driven only by the ticks it asks for, it still closes and
+// files the round once the copies run out.
+func TestRepeatsThenDeadlines(t *testing.T) {
+	cfg := config(t, 3)
+	cfg.TurnBudget = 8 * time.Millisecond // a copy every 2 ms
+	r := newRig(t, cfg)
+	r.gathered()
+	var starts, closes int
+	var filed bool
+	next := r.now
+	for range 10000 {
+		acts := r.at(next)
+		if len(of[Filed](acts)) > 0 {
+			filed = true
+			break
+		}
+		for _, s := range of[SendStart](acts) {
+			if !s.Repeat || s.Msg.AgeUs == 0 || s.Msg.Round != 1 {
+				t.Fatalf("copy %+v at %v", s, r.now)
+			}
+			starts++
+		}
+		for _, c := range of[SendClose](acts) {
+			if c.Repeat {
+				closes++
+			}
+		}
+		arms := of[Arm](r.acts)
+		if len(arms) == 0 || arms[len(arms)-1].At <= r.now {
+			t.Fatalf("no tick asked for after %v (%d start copies, %d close copies)", r.now, starts, closes)
+		}
+		next = arms[len(arms)-1].At
+	}
+	if !filed || starts == 0 || starts > turn.MaxRepeats || closes == 0 || closes > turn.MaxRepeats {
+		t.Fatalf("filed %v after %d start and %d close copies", filed, starts, closes)
 	}
 }

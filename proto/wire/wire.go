@@ -101,7 +101,7 @@ func Start(data []byte) (turn.Start, error) {
 		Scenario: m.GetState().GetScenario(), Ints: m.GetState().GetInts(), Reals: m.GetState().GetReals(),
 		Order: m.Order, DeadlinesUs: m.DeadlinesUs, Mode: turn.Mode(m.Mode),
 		Params: turn.Params{Samples: p.GetSamples(), Horizon: p.GetHorizon(), TerminalCost: p.GetTerminalCost(), Seed: p.GetFleetSeed()},
-		Digest: m.ScenarioDigest, Guess: m.GuessSource, ModelVersion: m.GuessModelVersion}, nil
+		Digest: m.ScenarioDigest, Guess: m.GuessSource, ModelVersion: m.GuessModelVersion, AgeUs: m.AgeUs}, nil
 }
 
 // EncodeStart encodes a round start.
@@ -110,7 +110,7 @@ func EncodeStart(s turn.Start) ([]byte, error) {
 		State: &pb.Snapshot{Scenario: s.Scenario, Ints: s.Ints, Reals: s.Reals}, Order: s.Order,
 		DeadlinesUs: s.DeadlinesUs, Mode: pb.Mode(s.Mode),
 		Params:         &pb.DecideParams{Samples: s.Params.Samples, Horizon: s.Params.Horizon, TerminalCost: s.Params.TerminalCost, FleetSeed: s.Params.Seed},
-		ScenarioDigest: s.Digest, GuessSource: s.Guess, GuessModelVersion: s.ModelVersion})
+		ScenarioDigest: s.Digest, GuessSource: s.Guess, GuessModelVersion: s.ModelVersion, AgeUs: s.AgeUs})
 }
 
 // Decision decodes a Decision.

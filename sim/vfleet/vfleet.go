@@ -383,7 +383,7 @@ func (f *Fleet) robotApply(r *robot, acts []turn.Action) {
 	for _, a := range acts {
 		switch a := a.(type) {
 		case turn.Arm:
-			ev := turn.Timer{Epoch: a.Epoch, Round: a.Round}
+			ev := turn.Timer{Epoch: a.Epoch, Round: a.Round, Kind: a.Kind}
 			f.at(a.At, func() { ev.Now = f.now; f.robotStep(r, ev) })
 		case turn.Compute:
 			f.computeTurn(r, a)
@@ -465,11 +465,11 @@ func (f *Fleet) computeTurn(r *robot, c turn.Compute) {
 // observe is robot r's software reporting round's outcome to its daemon.
 func (f *Fleet) observe(r *robot, round uint64, applied int) {
 	pos, seen := f.world.Report(r.id)
-	s, err := r.m.Observe(f.now, round, pos, applied, seen)
+	acts, err := r.m.Observe(f.now, round, pos, applied, seen)
 	if err != nil {
 		return // a refused report is the robot software's problem; the coordinator keeps its last position
 	}
-	f.sendReport(r, s.Report)
+	f.robotApply(r, acts)
 }
 
 // ---- the robots' software and the world ----
