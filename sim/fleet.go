@@ -26,6 +26,8 @@ import (
 	pb "baton/proto"
 	"baton/signal/learn"
 	"baton/sim/episode"
+	"baton/sim/fault"
+	"baton/sim/fault/tcpfault"
 	"baton/sim/fleetsum"
 	"baton/sim/model"
 	"baton/sim/vfleet"
@@ -63,6 +65,12 @@ type fleetOpts struct {
 	slow       faults
 	guessModel string // model file the coordinator distributes
 	exe        string // the binary that runs `agentd` and `coordinator`
+	// Drills: the episode seed (0: episode 0 of seed), the fault layer's
+	// plan for every daemon, and a TCP fault proxy between the robots and
+	// the NATS server.
+	world uint64
+	plan  *drillPlan
+	proxy bool
 	// The virtual-time fleet instead of processes, with its link model.
 	virtual     bool
 	link        vfleet.Link
@@ -73,20 +81,24 @@ type fleetOpts struct {
 // fleetRun is a running fleet: processes, the embedded NATS server and the
 // world, which it plays through each robot's local interface.
 type fleetRun struct {
-	o      fleetOpts
-	m      model.Fleet
-	ns     *shell.Embedded
-	url    string
-	coord  *proc
-	robots []*proc
-	bases  []string
-	common []string
-	gossip string
-	chttp  string
-	world  *world.World
-	u      []int // what each robot carried out last round
-	client *http.Client
-	wait   time.Duration
+	o   fleetOpts
+	m   model.Fleet
+	ns  *shell.Embedded
+	url string
+	// robotURL is where robots connect: the server, or the fault proxy.
+	robotURL string
+	tcp      *tcpfault.Proxy
+	planFile string
+	coord    *proc
+	robots   []*proc
+	bases    []string
+	common   []string
+	gossip   string
+	chttp    string
+	world    *world.World
+	u        []int // what each robot carried out last round
+	client   *http.Client
+	wait     time.Duration
 
 	coordArgs []string
 }
@@ -109,6 +121,21 @@ func startFleet(ctx context.Context, o fleetOpts) (*fleetRun, error) {
 	if err != nil {
 		return nil, err
 	}
+	f.robotURL = f.url
+	if o.proxy {
+		if f.tcp, err = tcpfault.Listen("127.0.0.1:0", strings.TrimPrefix(f.url, "nats://")); err != nil {
+			f.close()
+			return nil, err
+		}
+		f.robotURL = "nats://" + f.tcp.Addr()
+	}
+	if plan := o.faultPlan(m.Robots()); plan != nil {
+		f.planFile = filepath.Join(o.logDir, "drill-faults.json")
+		if err := writePlan(f.planFile, *plan); err != nil {
+			f.close()
+			return nil, err
+		}
+	}
 	ports, err := freePorts(m.Robots() + 2)
 	if err != nil {
 		f.close()
@@ -117,12 +144,18 @@ func startFleet(ctx context.Context, o fleetOpts) (*fleetRun, error) {
 	f.gossip = fmt.Sprintf("127.0.0.1:%d", ports[0])
 	f.chttp = fmt.Sprintf("127.0.0.1:%d", ports[1])
 	epSeed := episode.Seed(o.seed, 0)
-	f.common = []string{"--nats", f.url, "--fleet", o.fleet, "--prefix", o.prefix, "--scenario", o.sc.name, "--robots", strconv.Itoa(m.Robots())}
+	if o.world != 0 {
+		epSeed = o.world
+	}
+	f.common = []string{"--fleet", o.fleet, "--prefix", o.prefix, "--scenario", o.sc.name, "--robots", strconv.Itoa(m.Robots())}
 	if o.sc.file != "" {
 		abs, _ := filepath.Abs(o.sc.file)
 		f.common = append(f.common, "--config", abs)
 	}
-	coordArgs := append([]string{"coordinator"}, f.common...)
+	if f.planFile != "" {
+		f.common = append(f.common, "--drill-faults", f.planFile)
+	}
+	coordArgs := append([]string{"coordinator", "--nats", f.url}, f.common...)
 	cc := o.clock
 	cc.Seed = episode.FleetSeed(epSeed)
 	coordArgs = append(coordArgs, cc.Args()...)
@@ -183,6 +216,9 @@ func (f *fleetRun) spawn(name string, args []string) (*proc, error) {
 	}
 	cmd := exec.Command(f.o.exe, args...)
 	cmd.Stdout, cmd.Stderr = logf, logf
+	if f.planFile != "" {
+		cmd.Env = append(os.Environ(), DrillEnv+"=1")
+	}
 	// Children die with the simulator, even when it is killed outright.
 	cmd.SysProcAttr = &syscall.SysProcAttr{Pdeathsig: syscall.SIGTERM}
 	if err := cmd.Start(); err != nil {
@@ -196,11 +232,8 @@ func (f *fleetRun) spawn(name string, args []string) (*proc, error) {
 
 func (f *fleetRun) startRobot(r int) error {
 	port := strings.TrimPrefix(f.bases[r], "http://")
-	args := append([]string{"agentd"}, f.common...)
+	args := append([]string{"agentd", "--nats", f.robotURL}, f.common...)
 	args = append(args, "--robot", strconv.Itoa(r), "--http", port, "--join", f.gossip)
-	if d := f.o.slow[r]; d > 0 {
-		args = append(args, "--inject-delay", d.String())
-	}
 	p, err := f.spawn(fmt.Sprintf("agentd-%d", r), args)
 	f.robots[r] = p
 	return err
@@ -271,6 +304,28 @@ func (f *fleetRun) restartCoordinator(ctx context.Context, down time.Duration) e
 	return f.waitAlive(ctx, f.m.Robots(), 30*time.Second)
 }
 
+// waitNewRun waits until every robot is in a restarted coordinator's
+// round 1 (their local interfaces still hold the old run's rounds).
+func (f *fleetRun) waitNewRun(limit time.Duration) error {
+	for r, b := range f.bases {
+		deadline := time.Now().Add(limit)
+		for {
+			if resp, err := f.client.Get(b + "/healthz"); err == nil {
+				body, _ := io.ReadAll(resp.Body)
+				resp.Body.Close()
+				if strings.HasSuffix(string(body), " round 1\n") {
+					break
+				}
+			}
+			if time.Now().After(deadline) {
+				return fmt.Errorf("robot %d never started the new coordinator's round 1", r)
+			}
+			time.Sleep(20 * time.Millisecond)
+		}
+	}
+	return nil
+}
+
 // report posts every robot's observation of the last round.
 func (f *fleetRun) report(round int) {
 	for r, b := range f.bases {
@@ -321,9 +376,55 @@ func (f *fleetRun) play(round int) fleetsum.Round {
 func (f *fleetRun) close() {
 	procs := append([]*proc{f.coord}, f.robots...)
 	stopAll(procs)
+	if f.tcp != nil {
+		f.tcp.Close()
+	}
 	if f.ns != nil {
 		f.ns.Shutdown()
 	}
+}
+
+// faultPlan is the fault layer's plan for the daemons: the drill's, plus
+// --slow robots as delays on every link out of them.
+func (o fleetOpts) faultPlan(robots int) *drillPlan {
+	var p drillPlan
+	if o.plan != nil {
+		p = *o.plan
+	}
+	for r, d := range o.slow {
+		s := fault.Spec{Kind: fault.Delay, Delay: fault.Jitter{Fixed: d}}
+		for to := fault.Coordinator; to < robots; to++ {
+			if to != r {
+				s.Links = append(s.Links, [2]int{r, to})
+			}
+		}
+		p.Specs = append(p.Specs, s)
+	}
+	if len(p.Specs) == 0 {
+		return nil
+	}
+	return &p
+}
+
+// restartNATS stops the embedded server (every client loses it), waits
+// down, and starts a new one on the same address; clients reconnect.
+func (f *fleetRun) restartNATS(down time.Duration) error {
+	f.ns.Shutdown()
+	time.Sleep(down)
+	host, portStr, err := net.SplitHostPort(strings.TrimPrefix(f.url, "nats://"))
+	if err != nil {
+		return err
+	}
+	port, _ := strconv.Atoi(portStr)
+	var lastErr error
+	for range 50 { // the old listener may linger a moment
+		if f.ns, _, lastErr = shell.EmbeddedNATS(host, port); lastErr == nil {
+			return nil
+		}
+		time.Sleep(100 * time.Millisecond)
+	}
+	f.ns = nil
+	return fmt.Errorf("restarting NATS on %s: %w", f.url, lastErr)
 }
 
 // check validates the options against the scenario.

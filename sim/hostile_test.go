@@ -261,21 +261,7 @@ func logLines(t *testing.T, f *fleetRun) []clock.Record {
 // waitNewRun waits until every robot follows a run's round 1 again.
 func waitNewRun(t *testing.T, f *fleetRun) {
 	t.Helper()
-	for _, b := range f.bases {
-		deadline := time.Now().Add(20 * time.Second)
-		for {
-			resp, err := f.client.Get(b + "/healthz")
-			if err == nil {
-				body, _ := io.ReadAll(resp.Body)
-				resp.Body.Close()
-				if strings.HasSuffix(string(body), " round 1\n") {
-					break
-				}
-			}
-			if time.Now().After(deadline) {
-				t.Fatalf("%s never started the new coordinator's round 1", b)
-			}
-			time.Sleep(20 * time.Millisecond)
-		}
+	if err := f.waitNewRun(20 * time.Second); err != nil {
+		t.Fatal(err)
 	}
 }

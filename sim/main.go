@@ -23,6 +23,7 @@ commands:
   exact     exact costs of optimal, base and both rollouts on a tiny instance
   fleet     a whole fleet on this machine: embedded NATS, coordinator, one agentd per robot
   bench     bench rounds: hop and round latency against the physics
+  drill     run a drill file: fleets through scheduled faults, and what each costs
   train     learn a stand-in for rollout (the learned guess source); --iterations K
             repeats train-then-use-as-base (approximate policy iteration)
   agentd, coordinator   the daemons themselves (as ./agentd and ./coordinator)
@@ -54,9 +55,11 @@ func run(args []string) int {
 	case "agentd":
 		// The same daemon as ./agentd, so `sim fleet` can start real
 		// processes from this one binary.
-		return daemon.Main(args[1:])
+		return daemon.MainWith(args[1:], drillHooks())
 	case "coordinator":
-		return server.Main(args[1:])
+		return server.MainWith(args[1:], drillHooks())
+	case "drill":
+		err = cmdDrill(args[1:])
 	case "-h", "-help", "--help", "help":
 		fmt.Print(usage)
 		return 0

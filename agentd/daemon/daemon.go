@@ -41,7 +41,10 @@ usage: agentd --robot N --nats URL [flags]
 `
 
 // Main runs agentd with args and returns the exit code.
-func Main(args []string) int {
+func Main(args []string) int { return MainWith(args, shell.Hooks{}) }
+
+// MainWith is Main with hooks (see shell.Hooks); only `sim` passes any.
+func MainWith(args []string, hooks shell.Hooks) int {
 	fs := flag.NewFlagSet("agentd", flag.ContinueOnError)
 	var c shell.Common
 	c.Register(fs, "must match the coordinator's")
@@ -52,6 +55,9 @@ func Main(args []string) int {
 	gossip := fs.String("gossip", "127.0.0.1:0", "gossip bind host:port (port 0 picks one)")
 	join := fs.String("join", "", "gossip address(es) of the coordinator or any member, comma-separated")
 	guessModel := fs.String("guess-model", "", "trained guess model file (signal/learn) for learned guesses; without one they are base guesses until the fleet distributes one")
+	if hooks.Flags != nil {
+		hooks.Flags(fs)
+	}
 	if code, ok := shell.Parse(fs, synopsis, args); !ok {
 		return code
 	}
@@ -113,7 +119,16 @@ func Main(args []string) int {
 	}()
 	bucket := shell.ModelBucket(c.Prefix, c.Fleet)
 	cfg.FetchModel = func(ctx context.Context, v uint64) ([]byte, error) { return shell.FetchModel(ctx, nc, bucket, v) }
-	n := node.New(cfg, shell.NATSBus{Conn: nc})
+	var bus shell.Bus = shell.NATSBus{Conn: nc}
+	if hooks.Bus != nil {
+		wrapped, closeBus, err := hooks.Bus(bus, *robot, cfg.Subjects)
+		if err != nil {
+			return fail(err)
+		}
+		defer closeBus()
+		bus = wrapped
+	}
+	n := node.New(cfg, bus)
 	ctx, stop := signal.NotifyContext(context.Background(), os.Interrupt, syscall.SIGTERM)
 	defer stop()
 	go shell.KeepJoined(ctx, ml, joinList, c.Fleet+"/coordinator", lg)

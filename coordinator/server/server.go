@@ -40,7 +40,10 @@ usage: coordinator [--embed-nats | --nats URL] [flags]
 `
 
 // Main runs the coordinator with args and returns the exit code.
-func Main(args []string) int {
+func Main(args []string) int { return MainWith(args, shell.Hooks{}) }
+
+// MainWith is Main with hooks (see shell.Hooks); only `sim` passes any.
+func MainWith(args []string, hooks shell.Hooks) int {
 	fs := flag.NewFlagSet("coordinator", flag.ContinueOnError)
 	var c shell.Common
 	c.Register(fs, "robots must use the same")
@@ -53,6 +56,9 @@ func Main(args []string) int {
 	logFile := fs.String("decision-log", "", "append one JSON line per round to this file")
 	httpAddr := fs.String("http", "127.0.0.1:7480", "healthz and metrics address")
 	gossip := fs.String("gossip", "127.0.0.1:7946", "gossip bind host:port that robots --join")
+	if hooks.Flags != nil {
+		hooks.Flags(fs)
+	}
 	if code, ok := shell.Parse(fs, synopsis, args); !ok {
 		return code
 	}
@@ -142,7 +148,16 @@ func Main(args []string) int {
 	srv := &http.Server{Handler: mux, ReadHeaderTimeout: 5 * time.Second}
 	go func() { _ = srv.Serve(ln) }()
 	defer srv.Close()
-	hb := hub.New(hcfg, shell.NATSBus{Conn: nc})
+	var bus shell.Bus = shell.NATSBus{Conn: nc}
+	if hooks.Bus != nil {
+		wrapped, closeBus, err := hooks.Bus(bus, -1, fl.Subjects)
+		if err != nil {
+			return fail(err)
+		}
+		defer closeBus()
+		bus = wrapped
+	}
+	hb := hub.New(hcfg, bus)
 	lg.Info("coordinator up", zap.String("fleet", c.Fleet), zap.String("scenario", m.Name()), zap.Int("robots", m.Robots()),
 		zap.String("nats", nc.ConnectedUrl()), zap.String("gossip", *gossip), zap.String("mode", clock.ModeName(cfg)),
 		zap.String("guess", cfg.Guess), zap.String("digest", fl.Digest), zap.Uint64("epoch", hb.Epoch()))

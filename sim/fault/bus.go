@@ -1,13 +1,17 @@
 package fault
 
 import (
+	"errors"
+	"strings"
 	"sync"
 	"time"
 
 	"github.com/nats-io/nats.go"
 
+	"baton/agentd/turn"
 	"baton/deploy/shell"
 	pb "baton/proto"
+	"baton/proto/wire"
 )
 
 // Bus wraps a daemon's bus with the layer on the receiving side: every
@@ -15,14 +19,16 @@ import (
 // its sender (the robot its subject names, else the coordinator) to Self,
 // lost, delayed or duplicated as the layer says. Publishing is untouched,
 // so each receiver's links are decided by that receiver's layer, as on a
-// radio where each listener hears or misses on its own.
+// radio where each listener hears or misses on its own. The schedule goes
+// by the round each message names (the latest seen, for messages that
+// name none or do not decode).
 type Bus struct {
 	shell.Bus
 	Subjects pb.Subjects
-	Self     int           // this daemon's endpoint (Coordinator or a robot)
-	Round    func() uint64 // the round the daemon is in, for the schedule
+	Self     int // this daemon's endpoint (Coordinator or a robot)
 
 	mu    sync.Mutex
+	last  uint64 // the latest round a message named
 	layer *Layer
 	probe *Layer // draws for RTT, apart from the messages' streams
 	stop  chan struct{}
@@ -30,8 +36,8 @@ type Bus struct {
 }
 
 // NewBus wraps inner; specs must pass Check.
-func NewBus(inner shell.Bus, subjects pb.Subjects, self int, seed uint64, specs []Spec, round func() uint64) *Bus {
-	return &Bus{Bus: inner, Subjects: subjects, Self: self, Round: round, layer: New(seed, specs),
+func NewBus(inner shell.Bus, subjects pb.Subjects, self int, seed uint64, specs []Spec) *Bus {
+	return &Bus{Bus: inner, Subjects: subjects, Self: self, layer: New(seed, specs),
 		probe: New(seed^0x70726f6265, specs), stop: make(chan struct{})}
 }
 
@@ -45,12 +51,39 @@ func (b *Bus) Stats() Stats {
 // Close stops pending delayed deliveries.
 func (b *Bus) Close() { b.once.Do(func() { close(b.stop) }) }
 
-func (b *Bus) round() int {
-	if b.Round == nil {
-		return 1
+// round is the round msg names, or the latest named; b.mu held.
+func (b *Bus) round(msg *nats.Msg) int {
+	var r uint64
+	var err error
+	switch {
+	case msg == nil:
+		err = errNoRound
+	case msg.Subject == b.Subjects.Round:
+		var m turn.Start
+		m, err = wire.Start(msg.Data)
+		r = m.Round
+	case msg.Subject == b.Subjects.Close:
+		var m turn.Close
+		m, err = wire.Close(msg.Data)
+		r = m.Round
+	case b.Subjects.RobotOf(msg.Subject) >= 0 && strings.Contains(msg.Subject, ".decision."):
+		var m turn.Decision
+		m, err = wire.Decision(msg.Data)
+		r = m.Round
+	default:
+		err = errNoRound
 	}
-	return int(min(b.Round(), 1<<30))
+	// A forged far-future round must not move the schedule.
+	if err == nil && r > b.last && r < b.last+turn.RoundWindow {
+		b.last = r
+	}
+	if err == nil && r <= b.last {
+		return int(min(r, 1<<30))
+	}
+	return int(min(b.last, 1<<30))
 }
+
+var errNoRound = errors.New("no round")
 
 // ChanSubscribe subscribes inner into a channel of the bus's own and
 // passes each message on to ch through the layer.
@@ -71,7 +104,7 @@ func (b *Bus) ChanSubscribe(subject string, ch chan *nats.Msg) (shell.Sub, error
 					from = Coordinator
 				}
 				b.mu.Lock()
-				v := b.layer.Deliver(b.round(), from, b.Self)
+				v := b.layer.Deliver(b.round(msg), from, b.Self)
 				b.mu.Unlock()
 				for c := range v.Copies {
 					b.hand(ch, msg, v.After[c])
@@ -112,7 +145,7 @@ func (b *Bus) RTT() (time.Duration, error) {
 		return rtt, err
 	}
 	b.mu.Lock()
-	r := b.round()
+	r := b.round(nil)
 	up, down := b.probe.Deliver(r, b.Self, Coordinator), b.probe.Deliver(r, Coordinator, b.Self)
 	b.mu.Unlock()
 	return rtt + up.After[0] + down.After[0], nil

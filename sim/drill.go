@@ -1,0 +1,132 @@
+package main
+
+import (
+	"context"
+	"fmt"
+	"io"
+	"os"
+	"os/signal"
+	"runtime"
+	"syscall"
+	"time"
+
+	"github.com/schollz/progressbar/v3"
+	"golang.org/x/term"
+
+	"baton/sim/drill"
+)
+
+func cmdDrill(args []string) error {
+	fs := newFlags("drill", `Run a drill file: fleets through scheduled faults (message loss, bursty loss,
+delays, partitions, slow robots; killed daemons, coordinator or NATS server;
+stalled and reset connections), every configuration of its sweep on the same
+seeded episodes, and report what each configuration costs against the base
+policy and fault-free sequential rollout.
+
+  sim drill --file deploy/examples/drill-harbor.yaml --json out.json --html out.html`)
+	file := fs.String("file", "", "drill file (YAML; see deploy/examples/drill-*.yaml)")
+	jsonOut := fs.String("json", "", "write the report as JSON to this file")
+	htmlOut := fs.String("html", "", "write the report as one self-contained HTML page to this file")
+	workers := fs.Int("workers", runtime.NumCPU(), "configurations run at once (virtual-time drills)")
+	episodes := fs.Int("episodes", 0, "override the file's episodes")
+	logs := fs.String("logs", "", "process drills: directory for the daemons' logs (default: a temporary one)")
+	noGossip := fs.Bool("no-gossip", false, "skip measuring membership (false-dead robots) under each link fault")
+	if err := parse(fs, args); err != nil {
+		return err
+	}
+	if *file == "" {
+		fmt.Fprintln(fs.Output(), "sim drill: --file is required")
+		fs.Usage()
+		return errUsage
+	}
+	if *workers < 1 || *workers > 256 {
+		return fmt.Errorf("--workers %d: want 1..256", *workers)
+	}
+	d, err := drill.Load(*file)
+	if err != nil {
+		return err
+	}
+	if *episodes != 0 {
+		if *episodes < 2 || *episodes > drill.MaxEpisodes {
+			return fmt.Errorf("--episodes %d: want 2..%d", *episodes, drill.MaxEpisodes)
+		}
+		d.Episodes = *episodes
+	}
+	for _, out := range []string{*jsonOut, *htmlOut} {
+		if out != "" {
+			// Fail before the drill runs, not after.
+			f, err := os.OpenFile(out, os.O_CREATE|os.O_WRONLY, 0o644)
+			if err != nil {
+				return fmt.Errorf("report file: %w", err)
+			}
+			f.Close()
+		}
+	}
+	ctx, stop := signal.NotifyContext(context.Background(), os.Interrupt, syscall.SIGTERM)
+	defer stop()
+	o := drill.Options{Workers: *workers, Now: time.Now}
+	if d.Process() {
+		exe, err := os.Executable()
+		if err != nil {
+			return err
+		}
+		o.Processes = &processRunner{exe: exe, logDir: *logs}
+	}
+	if !*noGossip {
+		o.Gossip = nil // measureGossip (membership under loss): wired below
+	}
+	if term.IsTerminal(int(os.Stderr.Fd())) {
+		var bar *progressbar.ProgressBar
+		o.Progress = func(done, total int) {
+			if bar == nil {
+				bar = progressbar.NewOptions(total, progressbar.OptionSetWriter(os.Stderr),
+					progressbar.OptionSetDescription("fleet runs"), progressbar.OptionClearOnFinish(),
+					progressbar.OptionShowCount())
+			}
+			_ = bar.Set(done)
+		}
+	}
+	rep, err := drill.Run(ctx, d, o)
+	if err != nil {
+		if ctx.Err() != nil {
+			return fmt.Errorf("%w: %v", errInterrupted, err)
+		}
+		return err
+	}
+	if err := rep.Table(os.Stdout); err != nil {
+		return err
+	}
+	if *jsonOut != "" {
+		if err := writeReport(*jsonOut, rep.WriteJSON); err != nil {
+			return err
+		}
+		fmt.Printf("report %s\n", *jsonOut)
+	}
+	if *htmlOut != "" {
+		if err := writeReport(*htmlOut, rep.HTML); err != nil {
+			return err
+		}
+		fmt.Printf("page %s\n", *htmlOut)
+	}
+	return nil
+}
+
+// writeReport writes through a temporary file, so a failed write leaves
+// no half report behind.
+func writeReport(path string, write func(w io.Writer) error) error {
+	tmp := path + ".tmp"
+	f, err := os.Create(tmp)
+	if err != nil {
+		return fmt.Errorf("report file: %w", err)
+	}
+	if err := write(f); err != nil {
+		f.Close()
+		os.Remove(tmp)
+		return fmt.Errorf("writing %s: %w", path, err)
+	}
+	if err := f.Close(); err != nil {
+		os.Remove(tmp)
+		return fmt.Errorf("writing %s: %w", path, err)
+	}
+	return os.Rename(tmp, path)
+}

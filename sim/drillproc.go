@@ -1,0 +1,155 @@
+package main
+
+import (
+	"context"
+	"fmt"
+	"os"
+	"path/filepath"
+	"slices"
+	"time"
+
+	"baton/signal/learn"
+	"baton/sim/drill"
+	"baton/sim/fault"
+)
+
+// processRunner runs a drill's jobs as real fleets: the embedded NATS
+// server, the coordinator and one agentd per robot, as `sim fleet` starts
+// them, with the fault layer in every daemon and process faults carried
+// out for real (SIGKILL, server shutdown, the TCP fault proxy).
+type processRunner struct {
+	exe    string
+	logDir string // "" : a temporary directory, removed after a run that went well
+	runs   int
+}
+
+func (p *processRunner) RunProcess(ctx context.Context, j drill.Job) (drill.Episode, error) {
+	d := j.Drill
+	p.runs++
+	dir := p.logDir
+	keep := dir != ""
+	if dir == "" {
+		var err error
+		if dir, err = os.MkdirTemp("", "baton-drill-"); err != nil {
+			return drill.Episode{}, err
+		}
+	}
+	sub := filepath.Join(dir, fmt.Sprintf("run-%03d", p.runs))
+	var msg, procs []fault.Spec
+	for _, s := range j.Faults {
+		if s.Kind.Process() {
+			procs = append(procs, s)
+		} else {
+			msg = append(msg, s)
+		}
+	}
+	c := j.Clock
+	c.Rounds = 0 // the runner plays d.Rounds rounds of the software; runs restart their numbering
+	o := fleetOpts{sc: scenarioFlags{name: d.Scenario, file: d.Site, robots: d.Model.Robots()}, clock: c, seed: d.Seed,
+		world: j.World, fleet: "drill", prefix: "baton", logDir: sub, exe: p.exe,
+		proxy: slices.ContainsFunc(procs, func(s fault.Spec) bool { return s.Kind == fault.Stall || s.Kind == fault.Reset })}
+	o.clock.Rounds = d.Rounds * 2 // bounded, with room for a restarted run
+	if len(msg) > 0 {
+		o.plan = &drillPlan{Seed: j.FaultSeed, Specs: msg}
+	}
+	if net, ok := j.Guesses.Classifier.(*learn.Net); ok && j.Point.Guess == "learned" {
+		if err := os.MkdirAll(sub, 0o755); err != nil {
+			return drill.Episode{}, err
+		}
+		o.guessModel = filepath.Join(sub, "guess.gm")
+		if err := net.Save(o.guessModel, 1); err != nil {
+			return drill.Episode{}, err
+		}
+	}
+	f, err := startFleet(ctx, o)
+	if err != nil {
+		return drill.Episode{}, fmt.Errorf("%s: %w (logs in %s)", j.Point.Name(), err, sub)
+	}
+	ep, err := p.play(ctx, f, d.Rounds, procs)
+	f.close()
+	if err != nil {
+		return ep, fmt.Errorf("%s: %w (logs in %s)", j.Point.Name(), err, sub)
+	}
+	if !keep {
+		os.RemoveAll(dir)
+	}
+	return ep, nil
+}
+
+// play runs rounds rounds of the robots' software, carrying out each
+// process fault before its round. A killed robot comes back once its
+// down time has passed (the fleet plays on meanwhile, the robot held); a
+// killed coordinator or server is restarted before play goes on.
+func (p *processRunner) play(ctx context.Context, f *fleetRun, rounds int, procs []fault.Spec) (drill.Episode, error) {
+	var ep drill.Episode
+	type down struct {
+		robot int
+		until time.Time
+	}
+	var dead []down
+	t0 := time.Now()
+	note := func(format string, args ...any) {
+		ep.Events = append(ep.Events, fmt.Sprintf("%6.1fs ", time.Since(t0).Seconds())+fmt.Sprintf(format, args...))
+	}
+	run := 1 // the coordinator run's round number
+	for r := 1; r <= rounds; r++ {
+		if err := ctx.Err(); err != nil {
+			return ep, err
+		}
+		for i := 0; i < len(dead); i++ {
+			if time.Now().After(dead[i].until) {
+				if err := f.restart(ctx, dead[i].robot); err != nil {
+					return ep, fmt.Errorf("restarting robot %d: %w", dead[i].robot, err)
+				}
+				note("round %d: robot %d restarted", r, dead[i].robot)
+				dead = slices.Delete(dead, i, i+1)
+				i--
+			}
+		}
+		for _, s := range procs {
+			if s.From != r {
+				continue
+			}
+			switch s.Kind {
+			case fault.KillRobot:
+				for _, id := range s.Robots {
+					f.kill(id)
+					dead = append(dead, down{id, time.Now().Add(s.Down)})
+					note("round %d: robot %d killed (SIGKILL), back after %s", r, id, s.Down)
+				}
+			case fault.KillCoordinator:
+				note("round %d: coordinator killed (SIGKILL), back after %s", r, s.Down)
+				if err := f.restartCoordinator(ctx, s.Down); err != nil {
+					return ep, fmt.Errorf("restarting the coordinator: %w", err)
+				}
+				if err := f.waitNewRun(30 * time.Second); err != nil {
+					return ep, err
+				}
+				run = 1
+				note("round %d: coordinator back, its run starts at round 1", r)
+			case fault.KillNATS:
+				note("round %d: NATS server stopped, back after %s", r, s.Down)
+				if err := f.restartNATS(s.Down); err != nil {
+					return ep, err
+				}
+				note("round %d: NATS server back", r)
+			case fault.Stall:
+				f.tcp.Stall(s.Down)
+				note("round %d: robots' NATS connections stalled for %s", r, s.Down)
+			case fault.Reset:
+				f.tcp.Reset()
+				note("round %d: robots' NATS connections reset", r)
+			}
+		}
+		res := f.play(run)
+		res.Round = r
+		for i, u := range res.Decided {
+			if u >= 0 && slices.ContainsFunc(dead, func(x down) bool { return x.robot == i }) {
+				return ep, fmt.Errorf("round %d: robot %d is dead but decided", r, i)
+			}
+		}
+		ep.Rounds = append(ep.Rounds, res)
+		run++
+	}
+	return ep, nil
+}
