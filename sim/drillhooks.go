@@ -31,21 +31,27 @@ type drillPlan struct {
 // flag, which puts the fault layer between the daemon and its bus.
 func drillHooks() shell.Hooks {
 	var file string
+	var plan drillPlan
 	return shell.Hooks{
 		Flags: func(fs *flag.FlagSet) {
 			fs.StringVar(&file, "drill-faults", "", "drills only (set by sim drill and sim fleet, with "+DrillEnv+"=1): fault layer plan file")
+		},
+		Parsed: func() error {
+			if file == "" {
+				return nil
+			}
+			if os.Getenv(DrillEnv) != "1" {
+				return errors.New("--drill-faults is for fleets that sim drill or sim fleet start (they set " + DrillEnv + "=1); refusing to lose messages on purpose")
+			}
+			var err error
+			plan, err = readPlan(file)
+			return err
 		},
 		Bus: func(b shell.Bus, self int, subjects pb.Subjects) (shell.Bus, func(), error) {
 			if file == "" {
 				return b, func() {}, nil
 			}
-			if os.Getenv(DrillEnv) != "1" {
-				return nil, nil, errors.New("--drill-faults is for fleets that sim drill or sim fleet start (they set " + DrillEnv + "=1); refusing to lose messages on purpose")
-			}
-			p, err := readPlan(file)
-			if err != nil {
-				return nil, nil, err
-			}
+			p := plan
 			fb := fault.NewBus(b, subjects, self, p.Seed, p.Specs)
 			return fb, fb.Close, nil
 		},

@@ -1,13 +1,17 @@
 package main
 
 import (
+	"bufio"
 	"context"
+	"encoding/json"
 	"fmt"
 	"os"
 	"path/filepath"
 	"slices"
+	"strings"
 	"time"
 
+	"baton/coordinator/clock"
 	"baton/signal/learn"
 	"baton/sim/drill"
 	"baton/sim/fault"
@@ -67,6 +71,12 @@ func (p *processRunner) RunProcess(ctx context.Context, j drill.Job) (drill.Epis
 	}
 	ep, err := p.play(ctx, f, d.Rounds, procs)
 	f.close()
+	if err == nil {
+		var runs string
+		if runs, err = checkDecisionLog(f.decisionLog()); err == nil {
+			ep.Events = append(ep.Events, "decision log: "+runs)
+		}
+	}
 	if err != nil {
 		return ep, fmt.Errorf("%s: %w (logs in %s)", j.Point.Name(), err, sub)
 	}
@@ -152,4 +162,41 @@ func (p *processRunner) play(ctx context.Context, f *fleetRun, rounds int, procs
 		run++
 	}
 	return ep, nil
+}
+
+// checkDecisionLog reads a coordinator's decision log and checks that no
+// round was lost or logged twice: each run (epoch) numbers its rounds
+// 1, 2, 3... with no gap and no repeat. It says what it found, per run.
+func checkDecisionLog(path string) (string, error) {
+	file, err := os.Open(path)
+	if err != nil {
+		return "", fmt.Errorf("decision log: %w", err)
+	}
+	defer file.Close()
+	last := map[uint64]uint64{}
+	var epochs []uint64
+	sc := bufio.NewScanner(file)
+	sc.Buffer(nil, 1<<24)
+	for n := 1; sc.Scan(); n++ {
+		var rec clock.Record
+		if err := json.Unmarshal(sc.Bytes(), &rec); err != nil {
+			return "", fmt.Errorf("decision log %s line %d: %w", path, n, err)
+		}
+		prev, seen := last[rec.Epoch]
+		if !seen {
+			epochs = append(epochs, rec.Epoch)
+		}
+		if rec.Round != prev+1 {
+			return "", fmt.Errorf("decision log %s line %d: run %d logs round %d after round %d (a gap or a doubled round)", path, n, rec.Epoch, rec.Round, prev)
+		}
+		last[rec.Epoch] = rec.Round
+	}
+	if err := sc.Err(); err != nil {
+		return "", fmt.Errorf("decision log %s: %w", path, err)
+	}
+	var parts []string
+	for _, e := range epochs {
+		parts = append(parts, fmt.Sprintf("run %d rounds 1-%d", e, last[e]))
+	}
+	return strings.Join(parts, ", ") + ", no gap, no doubled round", nil
 }

@@ -61,6 +61,12 @@ func MainWith(args []string, hooks shell.Hooks) int {
 	if code, ok := shell.Parse(fs, synopsis, args); !ok {
 		return code
 	}
+	if hooks.Parsed != nil {
+		if err := hooks.Parsed(); err != nil {
+			fmt.Fprintln(os.Stderr, "agentd:", err)
+			return 2
+		}
+	}
 	if *robot < 0 {
 		fmt.Fprintln(os.Stderr, "agentd: --robot N is required (this robot's id, 0..robots-1)")
 		return 2

@@ -62,6 +62,12 @@ func MainWith(args []string, hooks shell.Hooks) int {
 	if code, ok := shell.Parse(fs, synopsis, args); !ok {
 		return code
 	}
+	if hooks.Parsed != nil {
+		if err := hooks.Parsed(); err != nil {
+			fmt.Fprintln(os.Stderr, "coordinator:", err)
+			return 2
+		}
+	}
 	lg, fail, err := c.Start("coordinator")
 	if err != nil {
 		fmt.Fprintln(os.Stderr, "coordinator:", err)

@@ -106,8 +106,8 @@ func (d *Drill) Classifier() (*learn.Net, error) {
 	return net, nil
 }
 
-// job builds the run of point p on episode e.
-func (d *Drill) job(p Point, e int, guesses signal.Options) Job {
+// Job is the run of point p on episode e.
+func (d *Drill) Job(p Point, e int, guesses signal.Options) Job {
 	ep := episode.Seed(d.Seed, e)
 	c := clock.DefaultConfig()
 	c.Fleet, c.Model, c.Digest, c.Seed, c.Epoch = "drill", d.Model, "drill", episode.FleetSeed(ep), 1
@@ -178,13 +178,13 @@ func Run(ctx context.Context, d *Drill, o Options) (*result.Report, error) {
 	seqPoint := Point{Mode: "sequential", Guess: "base"}
 	var jobs []Job
 	for e := range d.Episodes {
-		j := d.job(seqPoint, e, guesses)
+		j := d.Job(seqPoint, e, guesses)
 		j.Faults = nil // the reference runs without faults
 		jobs = append(jobs, j)
 	}
 	for _, p := range d.Points {
 		for e := range d.Episodes {
-			jobs = append(jobs, d.job(p, e, guesses))
+			jobs = append(jobs, d.Job(p, e, guesses))
 		}
 	}
 	results := make([]Episode, len(jobs))

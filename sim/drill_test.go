@@ -1,0 +1,126 @@
+package main
+
+import (
+	"context"
+	"os"
+	"os/exec"
+	"path/filepath"
+	"slices"
+	"strings"
+	"testing"
+	"time"
+
+	"baton/signal"
+	"baton/sim/drill"
+	"baton/sim/fleetsum"
+)
+
+// processDrill runs one episode of a drill on real processes.
+func processDrill(t *testing.T, text string) drill.Episode {
+	t.Helper()
+	d, err := drill.Parse(filepath.Join(t.TempDir(), "drill.yaml"), []byte(text))
+	if err != nil {
+		t.Fatal(err)
+	}
+	ctx, cancel := context.WithTimeout(context.Background(), 2*time.Minute)
+	defer cancel()
+	p := &processRunner{exe: simBin, logDir: t.TempDir()}
+	ep, err := p.RunProcess(ctx, d.Job(d.Points[0], 0, signal.Options{}))
+	if err != nil {
+		t.Fatal(err)
+	}
+	t.Logf("events: %s", strings.Join(ep.Events, "; "))
+	if !strings.Contains(ep.Events[len(ep.Events)-1], "no gap, no doubled round") {
+		t.Fatalf("decision log not checked: %v", ep.Events)
+	}
+	return ep
+}
+
+const processBase = `
+scenario: harbor
+robots: 3
+episodes: 2
+seed: 4
+samples: 4
+horizon: 6
+turn_deadline: 100ms
+`
+
+// A robot's daemon killed (SIGKILL) and restarted mid-drill: the others
+// keep deciding; once it is back in the order, every robot decides every
+// round; the decision log has no gap and no doubled round.
+func TestProcessDrillRobotKilled(t *testing.T) {
+	ep := processDrill(t, processBase+`rounds: 45
+faults:
+  - kind: kill-robot
+    robots: [1]
+    rounds: [4]
+    down: 1s
+`)
+	back := slices.IndexFunc(ep.Rounds, func(r fleetsum.Round) bool { return r.Round > 4 && r.Decided[1] >= 0 })
+	if back < 0 {
+		t.Fatalf("robot 1 never decided again after its restart")
+	}
+	for _, r := range ep.Rounds {
+		if r.Round < 4 || r.Round >= ep.Rounds[back].Round {
+			if r.Held != 0 {
+				t.Errorf("round %d: %d robots held with every robot alive (robot 1 back from round %d)", r.Round, r.Held, ep.Rounds[back].Round)
+			}
+		} else if r.Held > 1 || (r.Held == 1 && r.Decided[1] >= 0) {
+			t.Errorf("round %d: only the dead robot may hold: %v", r.Round, r.Decided)
+		}
+	}
+	t.Logf("robot 1 decided again from round %d", ep.Rounds[back].Round)
+}
+
+// The NATS server stopped and started again mid-drill: every robot
+// decides every round once it is back (the clients reconnect on their
+// own), and the decision log has no gap and no doubled round.
+func TestProcessDrillNATSKilled(t *testing.T) {
+	ep := processDrill(t, processBase+`rounds: 16
+faults:
+  - kind: kill-nats
+    rounds: [5]
+    down: 1s
+`)
+	for _, r := range ep.Rounds {
+		if (r.Round < 5 || r.Round > 8) && r.Held != 0 {
+			t.Errorf("round %d: %d robots held (the server was down in round 5 only)", r.Round, r.Held)
+		}
+	}
+}
+
+// The production daemons do not have the fault layer at all; the sim
+// binary's daemons refuse it unless a drill started them.
+func TestProductionDaemonsCannotLoseMessagesOnPurpose(t *testing.T) {
+	out, err := exec.Command("go", "list", "-deps", "baton/agentd", "baton/coordinator").CombinedOutput()
+	if err != nil {
+		t.Fatalf("%v\n%s", err, out)
+	}
+	for _, dep := range strings.Fields(string(out)) {
+		if strings.HasPrefix(dep, "baton/sim/fault") || dep == "baton/sim/drill" {
+			t.Fatalf("a production daemon links the fault layer (%s)", dep)
+		}
+	}
+	dir := t.TempDir()
+	plan := filepath.Join(dir, "plan.json")
+	if err := writePlan(plan, drillPlan{Seed: 1}); err != nil {
+		t.Fatal(err)
+	}
+	for _, bin := range []string{"agentd", "coordinator"} {
+		exe := filepath.Join(dir, bin)
+		if out, err := exec.Command("go", "build", "-o", exe, "baton/"+bin).CombinedOutput(); err != nil {
+			t.Fatalf("%v\n%s", err, out)
+		}
+		out, err := exec.Command(exe, "--drill-faults", plan).CombinedOutput()
+		if err == nil || !strings.Contains(string(out), "flag provided but not defined: -drill-faults") {
+			t.Errorf("./%s --drill-faults: %v\n%s", bin, err, out)
+		}
+	}
+	cmd := exec.Command(simBin, "agentd", "--robot", "0", "--nats", "nats://127.0.0.1:1", "--http", "127.0.0.1:0", "--drill-faults", plan)
+	cmd.Env = slices.DeleteFunc(os.Environ(), func(e string) bool { return strings.HasPrefix(e, DrillEnv+"=") })
+	out, err = cmd.CombinedOutput()
+	if err == nil || !strings.Contains(string(out), "--drill-faults is for fleets that sim drill or sim fleet start") {
+		t.Errorf("sim agentd --drill-faults without %s=1: %v\n%s", DrillEnv, err, out)
+	}
+}
