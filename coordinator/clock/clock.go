@@ -511,6 +511,10 @@ func (c *Machine) start(order []int) []Action {
 
 func (c *Machine) repeatEvery() time.Duration { return turn.RepeatEvery(c.cfg.TurnBudget) }
 
+// Grace is how long past a turn's deadline the coordinator still takes
+// its decision: two repeats (robots repeat every quarter turn budget).
+func Grace(turnBudget time.Duration) time.Duration { return 2 * turn.RepeatEvery(turnBudget) }
+
 // lastFiled is the last round whose reports were filed (0: none).
 func (c *Machine) lastFiled() uint64 {
 	if c.phase == collecting || c.phase == reporting {
@@ -532,12 +536,15 @@ func (c *Machine) nextRepeat(at time.Duration) time.Duration {
 // after the first.
 func (c *Machine) Repeats() uint64 { return c.repeats }
 
-// settled: every robot in the order decided or is past its own deadline;
-// otherwise the next deadline still ahead.
+// settled: every robot in the order decided or is past its own deadline
+// plus Grace; otherwise the next such time still ahead.
 func (c *Machine) settled() (time.Duration, bool) {
 	next, ok := time.Duration(0), true
+	// A decision sent just before its deadline may be lost once; its
+	// repeats get Grace to arrive.
+	grace := Grace(c.cfg.TurnBudget)
 	for k, r := range c.order {
-		due := c.startAt + c.deadlines[k]
+		due := c.startAt + c.deadlines[k] + grace
 		if c.got[r] == nil && c.now < due {
 			if ok || due < next {
 				next = due

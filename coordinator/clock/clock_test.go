@@ -239,7 +239,8 @@ func TestRoundSettlesWhenAllDecided(t *testing.T) {
 }
 
 // Hybrid: a robot that misses its deadline is held, the round closes once
-// every robot decided or is past its own deadline, and 3 misses in a row are named.
+// every robot decided or is past its own deadline plus the grace for
+// repeats (Grace: 50 ms here), and 3 misses in a row are named.
 func TestHybridHeldRobot(t *testing.T) {
 	r := newRig(t, config(t, 3))
 	r.gathered()
@@ -247,12 +248,12 @@ func TestHybridHeldRobot(t *testing.T) {
 		base := r.now
 		r.decide(0, round, 0)
 		r.decide(2, round, 0)
-		if len(of[SendClose](r.at(base+199*time.Millisecond))) != 0 {
-			t.Fatal("closed before robot 1's deadline")
+		if len(of[SendClose](r.at(base+249*time.Millisecond))) != 0 {
+			t.Fatal("closed before robot 1's deadline and grace")
 		}
-		acts := r.at(base + 200*time.Millisecond)
+		acts := r.at(base + 250*time.Millisecond)
 		cl := one[SendClose](t, acts).Msg
-		if !slices.Equal(cl.Held, []uint32{1}) || cl.LatencyUs != 200000 || cl.Stalled != 0 {
+		if !slices.Equal(cl.Held, []uint32{1}) || cl.LatencyUs != 250000 || cl.Stalled != 0 {
 			t.Fatalf("%+v", cl)
 		}
 		notes := of[Note](acts)
@@ -285,13 +286,13 @@ func TestSequentialStall(t *testing.T) {
 		base := r.now
 		r.now = base + time.Millisecond
 		r.decide(0, round, 1)
-		acts := r.at(base + 300*time.Millisecond)
+		acts := r.at(base + 350*time.Millisecond)
 		cl := one[SendClose](t, acts).Msg
-		if !slices.Equal(cl.Held, []uint32{1, 2}) || cl.Stalled != 2 || cl.LatencyUs != 300000 {
+		if !slices.Equal(cl.Held, []uint32{1, 2}) || cl.Stalled != 2 || cl.LatencyUs != 350000 {
 			t.Fatalf("%+v", cl)
 		}
 		rec := one[Closed](t, acts).Record
-		if rec.Stalled == nil || *rec.Stalled != 1 || rec.LatencyUs != 300000 {
+		if rec.Stalled == nil || *rec.Stalled != 1 || rec.LatencyUs != 350000 {
 			t.Fatalf("%+v", rec)
 		}
 		notes = append(notes, of[Note](acts)...)
@@ -618,7 +619,7 @@ func TestConflictingDecisions(t *testing.T) {
 	if len(of[SendClose](acts)) != 0 {
 		t.Fatal("closed before robot 0's deadline though its decisions conflict")
 	}
-	cl := one[SendClose](t, r.at(100*time.Millisecond)).Msg
+	cl := one[SendClose](t, r.at(150*time.Millisecond)).Msg
 	if !slices.Equal(cl.Held, []uint32{0}) || cl.Controls[0] != 0 {
 		t.Fatalf("%+v", cl)
 	}
