@@ -41,9 +41,14 @@ func (p *processRunner) RunProcess(ctx context.Context, j drill.Job) (drill.Epis
 	sub := filepath.Join(dir, fmt.Sprintf("run-%03d", p.runs))
 	var msg, procs []fault.Spec
 	for _, s := range j.Faults {
-		if s.Kind.Process() {
+		switch {
+		case s.Kind.Process():
 			procs = append(procs, s)
-		} else {
+		case s.Kind == fault.Slow:
+			// A real daemon computes as fast as it does; its turn's result
+			// leaves late instead, which is what its peers see.
+			msg = append(msg, slowAsDelay(s, d.Model.Robots())...)
+		default:
 			msg = append(msg, s)
 		}
 	}
@@ -199,4 +204,23 @@ func checkDecisionLog(path string) (string, error) {
 		parts = append(parts, fmt.Sprintf("run %d rounds 1-%d", e, last[e]))
 	}
 	return strings.Join(parts, ", ") + ", no gap, no doubled round", nil
+}
+
+// slowAsDelay turns a slow-turn fault into delays on every link out of
+// the slow robots, for the same rounds.
+func slowAsDelay(s fault.Spec, robots int) []fault.Spec {
+	var out []fault.Spec
+	for r := range robots {
+		if len(s.Robots) > 0 && !slices.Contains(s.Robots, r) {
+			continue
+		}
+		d := fault.Spec{Kind: fault.Delay, From: s.From, Until: s.Until, Delay: fault.Jitter{Fixed: s.Slow}}
+		for to := fault.Coordinator; to < robots; to++ {
+			if to != r {
+				d.Links = append(d.Links, [2]int{r, to})
+			}
+		}
+		out = append(out, d)
+	}
+	return out
 }
