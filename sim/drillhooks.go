@@ -7,6 +7,7 @@ import (
 	"fmt"
 	"io"
 	"os"
+	"strings"
 
 	"baton/agentd/turn"
 	"baton/deploy/shell"
@@ -53,7 +54,18 @@ func drillHooks() shell.Hooks {
 			}
 			p := plan
 			fb := fault.NewBus(b, subjects, self, p.Seed, p.Specs)
-			return fb, fb.Close, nil
+			closeBus := func() {
+				fb.Close()
+				// What this daemon's layer did, for the drill's report (a
+				// daemon killed outright writes nothing).
+				if line, err := json.Marshal(fb.Stats()); err == nil {
+					if f, err := os.OpenFile(file+".stats", os.O_APPEND|os.O_CREATE|os.O_WRONLY, 0o644); err == nil {
+						f.Write(append(line, '\n'))
+						f.Close()
+					}
+				}
+			}
+			return fb, closeBus, nil
 		},
 	}
 }
@@ -87,4 +99,26 @@ func writePlan(file string, p drillPlan) error {
 		return err
 	}
 	return os.WriteFile(file, data, 0o644)
+}
+
+// planStats sums what the daemons' fault layers wrote on exit.
+func planStats(file string) fault.Stats {
+	var sum fault.Stats
+	data, err := os.ReadFile(file + ".stats")
+	if err != nil {
+		return sum
+	}
+	for _, line := range strings.Split(string(data), "\n") {
+		var s fault.Stats
+		if json.Unmarshal([]byte(line), &s) != nil {
+			continue
+		}
+		sum.Delivered += s.Delivered
+		sum.Dropped += s.Dropped
+		sum.Duplicated += s.Duplicated
+		sum.Delayed += s.Delayed
+		sum.Reordered += s.Reordered
+		sum.Partitioned += s.Partitioned
+	}
+	return sum
 }

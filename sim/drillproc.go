@@ -76,6 +76,9 @@ func (p *processRunner) RunProcess(ctx context.Context, j drill.Job) (drill.Epis
 	}
 	ep, err := p.play(ctx, f, d.Rounds, procs)
 	f.close()
+	if f.planFile != "" {
+		ep.Faults = planStats(f.planFile)
+	}
 	if err == nil {
 		var runs string
 		if runs, err = checkDecisionLog(f.decisionLog()); err == nil {
