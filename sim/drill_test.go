@@ -124,3 +124,23 @@ func TestProductionDaemonsCannotLoseMessagesOnPurpose(t *testing.T) {
 		t.Errorf("sim agentd --drill-faults without %s=1: %v\n%s", DrillEnv, err, out)
 	}
 }
+
+// The coordinator killed and restarted mid-drill: its new run starts at
+// round 1 from the robots' reports, every robot decides every round of it,
+// and each run's rounds in the decision log have no gap and no repeat.
+func TestProcessDrillCoordinatorKilled(t *testing.T) {
+	ep := processDrill(t, processBase+`rounds: 14
+faults:
+  - kind: kill-coordinator
+    rounds: [5]
+    down: 3s
+`)
+	for _, r := range ep.Rounds {
+		if r.Held != 0 {
+			t.Errorf("round %d: %d robots held", r.Round, r.Held)
+		}
+	}
+	if runs := ep.Events[len(ep.Events)-1]; strings.Count(runs, "run ") != 2 {
+		t.Fatalf("want two coordinator runs in the log: %s", runs)
+	}
+}
