@@ -14,6 +14,7 @@ import (
 	"golang.org/x/term"
 
 	"baton/sim/drill"
+	"baton/sim/fault"
 )
 
 func cmdDrill(args []string) error {
@@ -73,7 +74,7 @@ policy and fault-free sequential rollout.
 		o.Processes = &processRunner{exe: exe, logDir: *logs}
 	}
 	if !*noGossip {
-		o.Gossip = nil // measureGossip (membership under loss): wired below
+		o.Gossip = measureGossip
 	}
 	if term.IsTerminal(int(os.Stderr.Fd())) {
 		var bar *progressbar.ProgressBar
@@ -129,4 +130,26 @@ func writeReport(path string, write func(w io.Writer) error) error {
 		return fmt.Errorf("writing %s: %w", path, err)
 	}
 	return os.Rename(tmp, path)
+}
+
+// gossipWatch is how long each membership measurement watches.
+const gossipWatch = 8 * time.Second
+
+// measureGossip runs the fleet's gossip (real memberlist nodes on
+// loopback, the daemons' settings) through the drill's link faults and
+// counts robots declared dead while alive. Only message faults apply, as
+// in round 1 of the drill; the count is the same for every configuration
+// that shares the link faults.
+func measureGossip(ctx context.Context, robots int, specs []fault.Spec) (int, error) {
+	var msg []fault.Spec
+	for _, s := range specs {
+		if !s.Kind.Process() && s.Kind != fault.Slow {
+			msg = append(msg, s)
+		}
+	}
+	res, err := fault.MeasureGossip(ctx, fault.GossipRun{Nodes: robots, Specs: msg, Seed: 1, Duration: gossipWatch})
+	if err != nil {
+		return 0, err
+	}
+	return res.FalseDead, nil
 }
