@@ -431,10 +431,11 @@ func (f *Fleet) computeTurn(r *robot, c turn.Compute) {
 	t0 := time.Now()
 	cfg := c.Params.Decide()
 	known := c.Known
-	took := f.cfg.TurnTime
+	own := f.cfg.TurnTime
 	if f.faults != nil {
-		took += f.faults.SlowBy(int(c.Round), r.id)
+		own += f.faults.SlowBy(int(c.Round), r.id)
 	}
+	took := own
 	if len(c.Guess) > 0 {
 		known = append([]int(nil), c.Known...)
 		ctx := &signal.Context{X: c.State, Round: c.Round, Order: c.Order, Robot: r.id, Known: c.Known, Last: c.Last,
@@ -458,7 +459,9 @@ func (f *Fleet) computeTurn(r *robot, c turn.Compute) {
 	}
 	ctl, _ := f.decider.Turn(c.State, r.id, known, decide.TurnSeed(c.Params.Seed, int(c.Round), r.id), cfg)
 	f.compute += time.Since(t0)
-	ev := turn.Computed{Epoch: c.Epoch, Round: c.Round, Control: ctl, Took: took}
+	// The decision reports its own turn's compute (as the daemon does:
+	// recomputed guesses are not the turn), but it is ready only after all.
+	ev := turn.Computed{Epoch: c.Epoch, Round: c.Round, Control: ctl, Took: own}
 	f.at(f.now+took, func() { ev.Now = f.now; f.robotStep(r, ev) })
 }
 
