@@ -6,9 +6,6 @@ import (
 	"strings"
 	"time"
 
-	"github.com/schollz/progressbar/v3"
-	"golang.org/x/term"
-
 	"baton/agentd/decide"
 	"baton/sim/compare"
 )
@@ -44,18 +41,7 @@ func cmdCompare(args []string) error {
 		Episodes: *episodes, Seed: *seed, MaxJoint: *maxJoint, Order: ord, Now: time.Now,
 		Decide: dc, Policies: strings.Split(*policies, ","),
 	}
-	// A bar only for a person watching a terminal, never into a pipe or file.
-	if term.IsTerminal(int(os.Stderr.Fd())) {
-		var bar *progressbar.ProgressBar
-		opts.Progress = func(done, total int) {
-			if bar == nil {
-				bar = progressbar.NewOptions(total, progressbar.OptionSetWriter(os.Stderr),
-					progressbar.OptionSetDescription("episodes"), progressbar.OptionClearOnFinish(),
-					progressbar.OptionShowCount())
-			}
-			_ = bar.Set(done)
-		}
-	}
+	opts.Progress = progress("episodes")
 	rep, err := compare.Run(m, opts)
 	if err != nil {
 		return err

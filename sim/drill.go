@@ -10,9 +10,6 @@ import (
 	"syscall"
 	"time"
 
-	"github.com/schollz/progressbar/v3"
-	"golang.org/x/term"
-
 	"baton/sim/drill"
 	"baton/sim/fault"
 )
@@ -76,17 +73,7 @@ policy and fault-free sequential rollout.
 	if !*noGossip {
 		o.Gossip = measureGossip
 	}
-	if term.IsTerminal(int(os.Stderr.Fd())) {
-		var bar *progressbar.ProgressBar
-		o.Progress = func(done, total int) {
-			if bar == nil {
-				bar = progressbar.NewOptions(total, progressbar.OptionSetWriter(os.Stderr),
-					progressbar.OptionSetDescription("fleet runs"), progressbar.OptionClearOnFinish(),
-					progressbar.OptionShowCount())
-			}
-			_ = bar.Set(done)
-		}
-	}
+	o.Progress = progress("fleet runs")
 	rep, err := drill.Run(ctx, d, o)
 	if err != nil {
 		if ctx.Err() != nil {

@@ -8,6 +8,9 @@ import (
 	"strconv"
 	"strings"
 
+	"github.com/schollz/progressbar/v3"
+	"golang.org/x/term"
+
 	"baton/sim/model"
 	"baton/sim/scenarios"
 )
@@ -70,4 +73,21 @@ func parseOrder(s string) ([]int, error) {
 		out = append(out, v)
 	}
 	return out, nil
+}
+
+// progress is a progress bar on stderr for a person watching a terminal,
+// never into a pipe or file (nil then).
+func progress(what string) func(done, total int) {
+	if !term.IsTerminal(int(os.Stderr.Fd())) {
+		return nil
+	}
+	var bar *progressbar.ProgressBar
+	return func(done, total int) {
+		if bar == nil {
+			bar = progressbar.NewOptions(total, progressbar.OptionSetWriter(os.Stderr),
+				progressbar.OptionSetDescription(what), progressbar.OptionClearOnFinish(),
+				progressbar.OptionShowCount())
+		}
+		_ = bar.Set(done)
+	}
 }

@@ -8,12 +8,9 @@ package herding_test
 
 import (
 	"fmt"
-	"math"
 	"os"
 	"testing"
 	"time"
-
-	"gonum.org/v1/gonum/stat"
 
 	"baton/agentd/decide"
 	"baton/signal"
@@ -93,16 +90,6 @@ func sizes() (train, eval int) {
 	return 60, 200
 }
 
-// ratioCI95 is mean(a)/mean(b) over paired samples with the half-width of
-// its 95% interval by the delta method (normal approximation).
-func ratioCI95(a, b []float64) (ratio, half float64) {
-	n := float64(len(a))
-	ma, mb := stat.Mean(a, nil), stat.Mean(b, nil)
-	ratio = ma / mb
-	v := stat.Variance(a, nil) - 2*ratio*stat.Covariance(a, b, nil) + ratio*ratio*stat.Variance(b, nil)
-	return ratio, 1.96 * math.Sqrt(max(v, 0)/n) / math.Abs(mb)
-}
-
 func TestHerdingLearnedGuessesRecoverCoordination(t *testing.T) {
 	m, err := harbor.Default(4) // every boat starts at the dock
 	if err != nil {
@@ -164,7 +151,7 @@ func TestHerdingLearnedGuessesRecoverCoordination(t *testing.T) {
 	if gainMean+gainHalf >= 0 {
 		t.Errorf("learned guesses are not clearly better than base guesses in parallel: paired difference %s", ci(gain))
 	}
-	retained, rHalf := ratioCI95(gain, gap)
+	retained, rHalf := episode.RatioCI95(gain, gap)
 	retained = -retained
 	t.Logf("retained = (J_base_par - J_learned_par) / (J_base_par - J_seq) = %.3f ± %.3f (delta method)", retained, rHalf)
 	if retained < 0.5 {

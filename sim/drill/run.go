@@ -344,7 +344,7 @@ func summarize(d *Drill, p Point, eps []Episode, base, seq []float64) result.Con
 		}
 	}
 	c.MeanCost, c.CI95 = episode.MeanCI95(c.EpisodeCosts)
-	c.Retained, c.RetainedCI95 = RatioCI95(gain, gap)
+	c.Retained, c.RetainedCI95 = episode.RatioCI95(gain, gap)
 	if decided > 0 {
 		c.GuessedShare = float64(guessed) / float64(decided)
 	}
@@ -396,23 +396,6 @@ func switches(d *Drill, rounds []fleetsum.Round) (after, back float64, ok bool) 
 		}
 	}
 	return float64(first - from), back, true
-}
-
-// RatioCI95 is mean(a)/mean(b) over paired samples with the half-width of
-// its 95% interval by the delta method (the usual ratio-estimator
-// variance: Var(a - R·b) / (n·mean(b)²); common practice).
-func RatioCI95(a, b []float64) (ratio, half float64) {
-	n := float64(len(a))
-	if n == 0 {
-		return math.NaN(), math.NaN()
-	}
-	ma, mb := stat.Mean(a, nil), stat.Mean(b, nil)
-	ratio = ma / mb
-	if n < 2 || mb == 0 {
-		return ratio, math.NaN()
-	}
-	v := stat.Variance(a, nil) - 2*ratio*stat.Covariance(a, b, nil) + ratio*ratio*stat.Variance(b, nil)
-	return ratio, 1.96 * math.Sqrt(max(v, 0)/n) / math.Abs(mb)
 }
 
 // quantile of sorted xs, nearest rank.

@@ -18,3 +18,19 @@ func TestMeanCI95(t *testing.T) {
 		t.Fatal("one sample has no interval")
 	}
 }
+
+// The delta-method interval of a ratio of paired means: exact when a is a
+// multiple of b (a - R·b has no variance), wider as they decouple.
+func TestRatioCI95(t *testing.T) {
+	r, h := RatioCI95([]float64{1, 2, 3}, []float64{2, 4, 6})
+	if r != 0.5 || h != 0 {
+		t.Fatalf("%v ± %v", r, h)
+	}
+	r, h = RatioCI95([]float64{1, 3, 2, 4}, []float64{2, 4, 6, 8})
+	if r != 0.5 || !(h > 0) {
+		t.Fatalf("%v ± %v", r, h)
+	}
+	if _, h := RatioCI95([]float64{1}, []float64{2}); !math.IsNaN(h) {
+		t.Fatal("one pair has no interval")
+	}
+}
