@@ -115,7 +115,7 @@ func MainWith(args []string, hooks shell.Hooks) int {
 	} else {
 		lg.Warn("no --join: this robot is in no fleet's gossip, so no coordinator will schedule it")
 	}
-	ml, err := shell.Gossip(shell.RobotMember(c.Fleet, *robot), *gossip, joinList, lg)
+	ml, err := shell.Gossip(shell.Incarnation(shell.RobotMember(c.Fleet, *robot)), *gossip, joinList, lg)
 	if err != nil {
 		return fail(err)
 	}

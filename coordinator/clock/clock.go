@@ -631,10 +631,13 @@ func (c *Machine) close() []Action {
 	return append(acts, SendClose{Msg: msg}, Closed{Record: c.rec})
 }
 
-// reportsIn: every robot in the order reported this round.
+// reportsIn: every robot that decided this round reported.
+// A robot whose decision never came is not waited for: it may be cut off
+// (its report is still taken if it comes before the filing), and waiting
+// for it would hold every robot that did hear the round.
 func (c *Machine) reportsIn() bool {
 	for _, r := range c.order {
-		if c.reports[r] == nil {
+		if c.reports[r] == nil && c.got[r] != nil {
 			return false
 		}
 	}

@@ -654,6 +654,8 @@ func TestRepeatsThenDeadlines(t *testing.T) {
 	cfg.TurnBudget = 8 * time.Millisecond // a copy every 2 ms
 	r := newRig(t, cfg)
 	r.gathered()
+	r.decide(0, 1, 0) // robot 2 never decides; nobody reports
+	r.decide(1, 1, 0)
 	var starts, closes int
 	var filed bool
 	next := r.now
@@ -682,5 +684,20 @@ func TestRepeatsThenDeadlines(t *testing.T) {
 	}
 	if !filed || starts == 0 || starts > turn.MaxRepeats || closes == 0 || closes > turn.MaxRepeats {
 		t.Fatalf("filed %v after %d start and %d close copies", filed, starts, closes)
+	}
+}
+
+// A robot whose decision never came (cut off, say) is not waited for after
+// the close: the robots that decided report, and the round is filed.
+func TestHeldRobotNotWaitedFor(t *testing.T) {
+	r := newRig(t, config(t, 3))
+	r.gathered()
+	r.decide(0, 1, 0)
+	r.decide(2, 1, 0)
+	one[SendClose](t, r.at(r.now+250*time.Millisecond))
+	r.report(0, epoch, 1, 11, 0)
+	acts := r.report(2, epoch, 1, 13, 0)
+	if f := one[Filed](t, acts).Record; !slices.Equal(f.Missing, []int{1}) || !slices.Equal(f.Held, []int{1}) {
+		t.Fatalf("%+v", f)
 	}
 }

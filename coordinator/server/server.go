@@ -115,7 +115,7 @@ func MainWith(args []string, hooks shell.Hooks) int {
 		return fail(err)
 	}
 	defer nc.Close()
-	ml, err := shell.Gossip(c.Fleet+"/coordinator", *gossip, nil, lg)
+	ml, err := shell.Gossip(shell.Incarnation(c.Fleet+"/coordinator"), *gossip, nil, lg)
 	if err != nil {
 		return fail(err)
 	}

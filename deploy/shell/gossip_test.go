@@ -91,3 +91,12 @@ func TestGossipOptions(t *testing.T) {
 		time.Sleep(20 * time.Millisecond)
 	}
 }
+
+// A restarted daemon gossips under a new incarnation of its name; the
+// robot it is counts once.
+func TestIncarnations(t *testing.T) {
+	a, b := Incarnation(RobotMember("f", 3)), Incarnation(RobotMember("f", 3))
+	if a == b || MemberOf(a) != "f/robot-3" || MemberOf("f/coordinator") != "f/coordinator" {
+		t.Fatalf("%q %q", a, b)
+	}
+}

@@ -14,6 +14,7 @@ import (
 	"net"
 	"net/url"
 	"os"
+	"slices"
 	"strconv"
 	"strings"
 	"time"
@@ -260,7 +261,7 @@ func KeepJoined(ctx context.Context, ml *memberlist.Memberlist, join []string, w
 		}
 		alive := false
 		for _, n := range ml.Members() {
-			alive = alive || (n.Name == want && n.State == memberlist.StateAlive)
+			alive = alive || (MemberOf(n.Name) == want && n.State == memberlist.StateAlive)
 		}
 		if alive {
 			warned = false
@@ -283,18 +284,37 @@ func oneLine(err error) string { return strings.Join(strings.Fields(err.Error())
 // RobotMember is a robot's gossip name in a fleet.
 func RobotMember(fleet string, r int) string { return fmt.Sprintf("%s/robot-%d", fleet, r) }
 
-// AliveRobots lists the robots of fleet that gossip reports alive.
+// Incarnation names one process of a member: name@<start time>. A
+// restarted daemon is a new member, so the old process being declared
+// dead (which gossip may only conclude after the new one joined) never
+// marks the new one dead too.
+func Incarnation(name string) string {
+	return name + "@" + strconv.FormatInt(time.Now().UnixNano(), 36)
+}
+
+// MemberOf is the member a gossip name is an incarnation of.
+func MemberOf(name string) string {
+	if i := strings.LastIndexByte(name, '@'); i >= 0 {
+		return name[:i]
+	}
+	return name
+}
+
+// AliveRobots lists the robots of fleet that gossip reports alive, each
+// once (a restarted robot's two incarnations can both be alive briefly).
 func AliveRobots(ml *memberlist.Memberlist, fleet string) []int {
 	var out []int
 	prefix := fleet + "/robot-"
 	for _, n := range ml.Members() {
-		if n.State != memberlist.StateAlive || !strings.HasPrefix(n.Name, prefix) {
+		name := MemberOf(n.Name)
+		if n.State != memberlist.StateAlive || !strings.HasPrefix(name, prefix) {
 			continue
 		}
-		if r, err := strconv.Atoi(strings.TrimPrefix(n.Name, prefix)); err == nil {
+		if r, err := strconv.Atoi(strings.TrimPrefix(name, prefix)); err == nil && !slices.Contains(out, r) {
 			out = append(out, r)
 		}
 	}
+	slices.Sort(out)
 	return out
 }
 

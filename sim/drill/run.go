@@ -128,7 +128,7 @@ func RunVirtual(j Job) (Episode, error) {
 	rc := node.DefaultConfig()
 	cfg := vfleet.Config{Clock: j.Clock, Stale: rc.Stale, Guess: "base", Guesses: j.Guesses, GuessMargin: rc.GuessMargin,
 		World: j.World, Link: vfleet.Link{Hop: d.Hop, Jitter: d.Jitter, Seed: model.Mix(j.World, 5)}, TurnTime: d.TurnTime,
-		Faults: j.Faults, FaultSeed: j.FaultSeed}
+		Faults: j.Faults, FaultSeed: j.FaultSeed, Wait: d.SoftwareWait()}
 	f, err := vfleet.New(cfg)
 	if err != nil {
 		return Episode{}, err
@@ -138,6 +138,14 @@ func RunVirtual(j Job) (Episode, error) {
 		return Episode{}, fmt.Errorf("%s, episode %d: %w", j.Point.Name(), j.Episode, err)
 	}
 	return Episode{Rounds: rounds, Faults: f.FaultStats(), Late: f.Late(), VirtualTime: f.Now()}, nil
+}
+
+// SoftwareWait is how long a robot's own software waits for a round's
+// decision before it holds: the longest a round can take (every turn's
+// deadline, the grace, a period). A robot cut off from the coordinator
+// holds after that instead of keeping the rest of the world waiting.
+func (d *Drill) SoftwareWait() time.Duration {
+	return time.Duration(d.Model.Robots()+2)*d.TurnBudget + d.Period
 }
 
 // BaseCost plays the base policy alone in episode e's world.
@@ -189,6 +197,15 @@ func Run(ctx context.Context, d *Drill, o Options) (*result.Report, error) {
 	}
 	results := make([]Episode, len(jobs))
 	errs := make([]error, len(jobs))
+	// Progress counts fleet runs and then membership runs (real time).
+	total := len(jobs)
+	if o.Gossip != nil {
+		sets := map[string]bool{}
+		for _, p := range d.Points {
+			sets[fmt.Sprint(append(slices.Clone(d.Faults), p.Channel...))] = true
+		}
+		total += len(sets)
+	}
 	workers := max(o.Workers, 1)
 	if d.Process() {
 		workers = 1 // real fleets share the machine's ports and cores
@@ -214,7 +231,7 @@ func Run(ctx context.Context, d *Drill, o Options) (*result.Report, error) {
 				mu.Lock()
 				done++
 				if o.Progress != nil {
-					o.Progress(done, len(jobs))
+					o.Progress(done, total)
 				}
 				mu.Unlock()
 			}
@@ -251,6 +268,7 @@ feed:
 	rep.SequentialCost, rep.SequentialCI95 = episode.MeanCI95(seq)
 	// Membership is measured once per distinct set of link faults.
 	falseDead := map[string]int{}
+	gossipErr := map[string]string{}
 	var gossipTime time.Duration
 	for pi, p := range d.Points {
 		eps := results[d.Episodes*(pi+1) : d.Episodes*(pi+2)]
@@ -270,14 +288,26 @@ feed:
 				}
 				var err error
 				if n, err = o.Gossip(ctx, d.Model.Robots(), specs); err != nil {
-					return nil, fmt.Errorf("membership under %s: %w", p.Name(), err)
+					if ctx.Err() != nil {
+						return nil, ctx.Err()
+					}
+					// Gossip could not even form under these faults (a
+					// partition, say): nothing to count, and that is news.
+					n = -1
+					gossipErr[key] = err.Error()
 				}
 				falseDead[key] = n
+				if done++; o.Progress != nil {
+					o.Progress(done, total)
+				}
 				if o.Now != nil {
 					gossipTime += o.Now().Sub(g0)
 				}
 			}
 			c.FalseDead = n
+			if e := gossipErr[key]; e != "" {
+				c.Events = append(c.Events, "membership not measured: "+e)
+			}
 		}
 		if d.Process() {
 			c.Process = true
