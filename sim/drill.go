@@ -6,6 +6,7 @@ import (
 	"io"
 	"os"
 	"os/signal"
+	"path/filepath"
 	"runtime"
 	"syscall"
 	"time"
@@ -26,7 +27,7 @@ policy and fault-free sequential rollout.
 	jsonOut := fs.String("json", "", "write the report as JSON to this file")
 	htmlOut := fs.String("html", "", "write the report as one self-contained HTML page to this file")
 	workers := fs.Int("workers", runtime.NumCPU(), "configurations run at once (virtual-time drills)")
-	episodes := fs.Int("episodes", 0, "override the file's episodes")
+	episodes := fs.Int("episodes", 0, "episodes per configuration (0: the file's)")
 	logs := fs.String("logs", "", "process drills: directory for the daemons' logs (default: a temporary one)")
 	noGossip := fs.Bool("no-gossip", false, "skip measuring membership (false-dead robots) under each link fault")
 	if err := parse(fs, args); err != nil {
@@ -52,12 +53,11 @@ policy and fault-free sequential rollout.
 	}
 	for _, out := range []string{*jsonOut, *htmlOut} {
 		if out != "" {
-			// Fail before the drill runs, not after.
-			f, err := os.OpenFile(out, os.O_CREATE|os.O_WRONLY, 0o644)
-			if err != nil {
+			// Fail before the drill runs, not after, and leave nothing
+			// behind if it then fails.
+			if err := writable(out); err != nil {
 				return fmt.Errorf("report file: %w", err)
 			}
-			f.Close()
 		}
 	}
 	ctx, stop := signal.NotifyContext(context.Background(), os.Interrupt, syscall.SIGTERM)
@@ -99,9 +99,73 @@ policy and fault-free sequential rollout.
 	return nil
 }
 
-// writeReport writes through a temporary file, so a failed write leaves
-// no half report behind.
+// writable checks a report can be written at path without writing it.
+func writable(path string) error {
+	target, special, err := reportTarget(path)
+	if err != nil {
+		return err
+	}
+	if special {
+		f, err := os.OpenFile(target, os.O_WRONLY, 0)
+		if err != nil {
+			return err
+		}
+		return f.Close()
+	}
+	f, err := os.CreateTemp(filepath.Dir(target), ".baton-report-*")
+	if err != nil {
+		return fmt.Errorf("%s: %w", path, err)
+	}
+	f.Close()
+	return os.Remove(f.Name())
+}
+
+// reportTarget follows symlinks; special is true for an existing file
+// that is not a regular one (a device, a pipe), which is written in place.
+func reportTarget(path string) (target string, special bool, err error) {
+	target = path
+	if t, err := filepath.EvalSymlinks(path); err == nil {
+		target = t
+	} else if l, err := os.Readlink(path); err == nil {
+		// A link to a file not made yet: make it there.
+		if !filepath.IsAbs(l) {
+			l = filepath.Join(filepath.Dir(path), l)
+		}
+		target = l
+	}
+	fi, err := os.Stat(target)
+	switch {
+	case err == nil && fi.IsDir():
+		return "", false, fmt.Errorf("%s is a directory", path)
+	case err == nil && !fi.Mode().IsRegular():
+		return target, true, nil
+	}
+	return target, false, nil
+}
+
+// writeReport writes a regular file through a temporary one renamed into
+// place, so a failed write leaves no half report behind; a device or pipe
+// is written directly.
 func writeReport(path string, write func(w io.Writer) error) error {
+	target, special, err := reportTarget(path)
+	if err != nil {
+		return err
+	}
+	if special {
+		f, err := os.OpenFile(target, os.O_WRONLY, 0)
+		if err != nil {
+			return fmt.Errorf("report file: %w", err)
+		}
+		if err := write(f); err != nil {
+			f.Close()
+			return fmt.Errorf("writing %s: %w", path, err)
+		}
+		if err := f.Close(); err != nil {
+			return fmt.Errorf("writing %s: %w", path, err)
+		}
+		return nil
+	}
+	path = target
 	tmp := path + ".tmp"
 	f, err := os.Create(tmp)
 	if err != nil {

@@ -2,6 +2,8 @@ package main
 
 import (
 	"context"
+	"errors"
+	"io"
 	"os"
 	"os/exec"
 	"path/filepath"
@@ -142,5 +144,41 @@ faults:
 	}
 	if runs := ep.Events[len(ep.Events)-1]; strings.Count(runs, "run ") != 2 {
 		t.Fatalf("want two coordinator runs in the log: %s", runs)
+	}
+}
+
+// Reports go where the user pointed: through a symlink to its target, into
+// a device as it is, never over a directory; a failed write leaves nothing.
+func TestWriteReport(t *testing.T) {
+	dir := t.TempDir()
+	link, target := filepath.Join(dir, "link.json"), filepath.Join(dir, "target.json")
+	if err := os.Symlink(target, link); err != nil {
+		t.Fatal(err)
+	}
+	hello := func(w io.Writer) error { _, err := io.WriteString(w, "{}"); return err }
+	if err := writeReport(link, hello); err != nil {
+		t.Fatal(err)
+	}
+	if fi, err := os.Lstat(link); err != nil || fi.Mode()&os.ModeSymlink == 0 {
+		t.Fatalf("the link was replaced: %v %v", fi, err)
+	}
+	if b, _ := os.ReadFile(target); string(b) != "{}" {
+		t.Fatalf("target holds %q", b)
+	}
+	if err := writeReport(os.DevNull, hello); err != nil {
+		t.Fatal(err)
+	}
+	if fi, err := os.Stat(os.DevNull); err != nil || fi.Mode().IsRegular() {
+		t.Fatalf("%s was replaced", os.DevNull)
+	}
+	if err := writable(dir); err == nil || !strings.Contains(err.Error(), "is a directory") {
+		t.Fatalf("a directory as report: %v", err)
+	}
+	bad := filepath.Join(dir, "bad.json")
+	if err := writeReport(bad, func(io.Writer) error { return errors.New("disk on fire") }); err == nil {
+		t.Fatal("a failed write succeeded")
+	}
+	if entries, _ := os.ReadDir(dir); len(entries) != 2 {
+		t.Fatalf("left behind: %v", entries)
 	}
 }

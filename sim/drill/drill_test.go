@@ -52,6 +52,13 @@ func TestBadFiles(t *testing.T) {
 		{"unknown field", "colour: blue\n", "colour"},
 		{"bursty", "sweep:\n  bursty: [{loss: 0.2, mean_burst: 0.5}]\n", "sweep.bursty[0].mean_burst"},
 		{"delay distribution", "faults:\n  - kind: delay\n    delay: {mean: 5ms, dist: cauchy}\n", `faults[0].delay.dist: "cauchy"`},
+		{"loss without p", "faults:\n  - kind: loss\n", "faults[0]: a loss fault needs p"},
+		{"reorder without delay", "faults:\n  - kind: reorder\n    p: 0.5\n", "a reorder fault needs delay"},
+		{"burst half given", "faults:\n  - kind: burst\n    p_bad_good: 0.5\n", "needs loss and mean_burst, or p_good_bad and p_bad_good"},
+		{"burst both ways", "faults:\n  - kind: burst\n    loss: 0.2\n    mean_burst: 4\n    p_good_bad: 0.1\n", "not both"},
+		{"self link", "faults:\n  - kind: loss\n    p: 0.5\n    links: [[1, 1]]\n", "links[0]: a link from robot 1 to itself"},
+		{"kill nobody", "faults:\n  - kind: kill-robot\n    rounds: [3]\n", "a kill-robot fault needs robots"},
+		{"robots on a server fault", "faults:\n  - kind: kill-nats\n    rounds: [3]\n    robots: [1]\n", "faults[0].robots: does not apply to a kill-nats fault"},
 	} {
 		_, err := Parse("drill.yaml", []byte(small+c.extra))
 		if err == nil || !strings.Contains(err.Error(), c.want) {

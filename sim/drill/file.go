@@ -469,23 +469,48 @@ func (fy faultYAML) spec(doc *config.Doc, path string, robots, rounds int) (faul
 		*dst = *p
 		return nil
 	}
-	// Fields that mean nothing for this kind are mistakes worth naming.
+	// Fields that mean nothing for this kind are mistakes worth naming,
+	// and so are missing ones: a fault that does nothing is a typo.
+	scope := []string{"rounds", "robots", "links"}
 	allowed := map[fault.Kind][]string{
 		fault.Loss: {"p"}, fault.Duplicate: {"p", "delay"}, fault.Reorder: {"p", "delay"}, fault.Delay: {"delay"},
 		fault.Burst: {"loss", "mean_burst", "p_good_bad", "p_bad_good", "loss_good", "loss_bad"}, fault.Partition: {"groups"},
 		fault.Slow: {"slow"}, fault.KillRobot: {"down"}, fault.KillCoordinator: {"down"}, fault.KillNATS: {"down"},
 		fault.Stall: {"down"}, fault.Reset: {},
 	}
-	for _, f := range []string{"p", "delay", "loss", "mean_burst", "p_good_bad", "p_bad_good", "loss_good", "loss_bad", "groups", "slow", "down"} {
-		if doc.Has(path+"."+f) && !slices.Contains(allowed[s.Kind], f) {
-			return s, doc.Errorf(path+"."+f, "does not apply to a %s fault (it takes: %s)", s.Kind, strings.Join(append([]string{"rounds", "robots"}, allowed[s.Kind]...), ", "))
+	switch s.Kind {
+	case fault.Slow, fault.KillRobot:
+		scope = []string{"rounds", "robots"}
+	case fault.Partition, fault.KillCoordinator, fault.KillNATS, fault.Stall, fault.Reset:
+		scope = []string{"rounds"}
+	}
+	for _, f := range []string{"robots", "links", "p", "delay", "loss", "mean_burst", "p_good_bad", "p_bad_good", "loss_good", "loss_bad", "groups", "slow", "down"} {
+		if doc.Has(path+"."+f) && !slices.Contains(allowed[s.Kind], f) && !slices.Contains(scope, f) {
+			return s, doc.Errorf(path+"."+f, "does not apply to a %s fault (it takes: %s)", s.Kind, strings.Join(append(scope, allowed[s.Kind]...), ", "))
+		}
+	}
+	need := map[fault.Kind][]string{fault.Loss: {"p"}, fault.Duplicate: {"p"}, fault.Reorder: {"p", "delay"},
+		fault.Delay: {"delay"}, fault.Partition: {"groups"}, fault.Slow: {"slow"}, fault.KillRobot: {"robots"}}
+	for _, f := range need[s.Kind] {
+		if !doc.Has(path + "." + f) {
+			return s, doc.Errorf(path, "a %s fault needs %s", s.Kind, f)
+		}
+	}
+	for i, l := range s.Links {
+		if l[0] == l[1] {
+			return s, doc.Errorf(fmt.Sprintf("%s.links[%d]", path, i), "a link from %s to itself carries nothing", endpointName(l[0]))
 		}
 	}
 	if err := prob("p", fy.P, &s.P); err != nil {
 		return s, err
 	}
 	if s.Kind == fault.Burst {
+		channel := fy.PGoodBad != nil || fy.PBadGood != nil || fy.LossGood != nil || fy.LossBad != nil
 		switch {
+		case (fy.Loss != nil || fy.MeanBurst != nil) && channel:
+			return s, doc.Errorf(path, "give loss and mean_burst, or the channel's p_good_bad, p_bad_good (and loss_good, loss_bad), not both")
+		case fy.Loss == nil && fy.MeanBurst == nil && (fy.PGoodBad == nil || fy.PBadGood == nil):
+			return s, doc.Errorf(path, "a burst fault needs loss and mean_burst, or p_good_bad and p_bad_good")
 		case fy.Loss != nil || fy.MeanBurst != nil:
 			if fy.Loss == nil || fy.MeanBurst == nil {
 				return s, doc.Errorf(path, "a burst fault takes loss and mean_burst together (or p_good_bad, p_bad_good, loss_good, loss_bad)")
@@ -563,3 +588,10 @@ func endpoint(s string, robots int) (int, error) {
 }
 
 var errNoRunner = errors.New("this drill kills processes or connections: it needs real processes (sim drill runs them)")
+
+func endpointName(e int) string {
+	if e == fault.Coordinator {
+		return "the coordinator"
+	}
+	return fmt.Sprintf("robot %d", e)
+}
