@@ -231,7 +231,7 @@ func (f *Fleet) begin() {
 	f.coordStep(clock.Members{Now: f.now, Alive: alive})
 	f.round = 1
 	f.answers = make([]*turn.View, len(f.robots))
-	f.at(f.now+f.cfg.Wait, f.softDeadline(1))
+	f.at(f.now+f.cfg.Wait, f.softDeadline(0))
 	for _, r := range f.robots {
 		f.observe(r, 0, 0)
 	}
@@ -491,15 +491,20 @@ func (f *Fleet) software(r *robot) {
 	f.maybeStep()
 }
 
-func (f *Fleet) softDeadline(round int) func() {
+// softDeadline ends the software's wait of world step step (the number
+// of steps carried out before it).
+func (f *Fleet) softDeadline(step int) func() {
 	return func() {
-		if f.round != round || f.answers == nil {
+		if len(f.results) != step || f.answers == nil {
 			return
 		}
+		round := f.round
 		for i, r := range f.robots {
 			if f.answers[i] == nil {
+				// Out of time: what the local interface answers then, as
+				// `sim fleet` reads it: the robot's own decision when it
+				// has one (the close did not come), else a hold.
 				v := r.m.View(f.now, uint64(round), true)
-				v.Hold, v.Control = true, 0 // out of time: hold
 				f.answers[i] = &v
 			}
 		}
@@ -516,7 +521,7 @@ func (f *Fleet) maybeStep() {
 			return
 		}
 	}
-	res := fleetsum.Round{Round: f.round, Decided: make([]int, len(f.robots))}
+	res := fleetsum.Round{Round: len(f.results) + 1, Decided: make([]int, len(f.robots))}
 	for i, v := range f.answers {
 		if v.Hold {
 			res.Decided[i] = -1
@@ -544,12 +549,23 @@ func (f *Fleet) maybeStep() {
 		f.onRound(res)
 	}
 	done := f.round
-	f.round++
+	// The software waits for the next round only if this one started
+	// somewhere: when every robot timed out before the coordinator even
+	// started it (its reports are late), the world moved on with every
+	// robot holding, and the same round is still to come.
+	started := false
+	for _, r := range f.robots {
+		started = started || r.m.Round() >= uint64(done)
+	}
+	if started {
+		f.round++
+	}
 	f.answers = make([]*turn.View, len(f.robots))
 	f.started = f.now
-	f.at(f.now+f.cfg.Wait, f.softDeadline(f.round))
+	f.at(f.now+f.cfg.Wait, f.softDeadline(len(f.results)))
 	for i, r := range f.robots {
-		f.observe(r, uint64(done), u[i])
+		// A robot that never saw this round reports on the last it saw.
+		f.observe(r, min(uint64(done), r.m.Round()), u[i])
 	}
 	// A robot may already be deciding the next round.
 	for _, r := range f.robots {
