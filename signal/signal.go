@@ -59,6 +59,12 @@ type Classifier interface {
 	Predict(x model.State, r, k int) int
 }
 
+// InOrder is a Classifier that can also use what robot r's predecessors
+// chose (prior[j], -1 where not known), as rollout's turn r does.
+type InOrder interface {
+	PredictGiven(x model.State, r, k int, prior []int) int
+}
+
 // Options configure New.
 type Options struct {
 	// Classifier backs learned (and recompute's default fallback); nil
@@ -159,11 +165,32 @@ func (Learned) Name() string { return "learned" }
 // Loaded reports whether a classifier is set (otherwise guesses are base).
 func (l Learned) Loaded() bool { return l.C != nil }
 
+// Fill guesses in turn order: each missing predecessor's guess is made
+// knowing the controls of the robots before it, heard or guessed just
+// before (with an InOrder classifier), so robots in one place are told
+// apart as rollout tells them apart.
 func (l Learned) Fill(c *Context, missing []int, out []int) {
+	inOrder, _ := l.C.(InOrder)
+	var buf [model.MaxRobots]int
+	prior := buf[:min(len(out), model.MaxRobots)]
 	for _, j := range missing {
 		k := position(c.Order, j)
 		if l.C != nil && k >= 0 {
-			if u := l.C.Predict(c.X, j, k); valid(l.M, c.X, j, u) {
+			u := -1
+			if inOrder != nil {
+				for i := range prior {
+					prior[i] = -1
+				}
+				for _, p := range c.Order[:k] {
+					if p < len(prior) {
+						prior[p] = out[p]
+					}
+				}
+				u = inOrder.PredictGiven(c.X, j, k, prior)
+			} else {
+				u = l.C.Predict(c.X, j, k)
+			}
+			if valid(l.M, c.X, j, u) {
 				out[j] = u
 				continue
 			}

@@ -277,8 +277,9 @@ func TestFleetLearnedGuesses(t *testing.T) {
 			for j := range known {
 				known[j] = -1
 			}
-			for i := range k { // every predecessor guessed by the model
-				known[i] = loaded.Predict(ref.Y, i, i)
+			for i := range k { // every predecessor guessed by the model, in order
+				prior := slices.Clone(known) // robots 0..i-1 guessed, the rest -1
+				known[i] = loaded.PredictGiven(ref.Y, i, i, prior)
 			}
 			want[k], _ = d.Turn(ref.Y, k, known, decide.TurnSeed(episode.FleetSeed(ep), r, k))
 		}

@@ -19,20 +19,33 @@ import (
 )
 
 type trainRow struct {
-	Iteration     int     `json:"iteration"`
-	BaseCost      float64 `json:"base_cost"`
-	BaseCI95      float64 `json:"base_ci95"`
-	RolloutCost   float64 `json:"rollout_cost"`
-	RolloutCI95   float64 `json:"rollout_ci95"`
-	LearnedCost   float64 `json:"learned_cost"`
-	LearnedCI95   float64 `json:"learned_ci95"`
-	Accuracy      float64 `json:"test_accuracy"`
-	MajorityRate  float64 `json:"test_majority_rate"`
-	TrainAccuracy float64 `json:"train_accuracy"`
-	Samples       int     `json:"train_samples"`
-	CollectSecs   float64 `json:"collect_seconds"`
-	TrainSecs     float64 `json:"train_seconds"`
-	ModelBytes    int     `json:"model_bytes"`
+	Iteration   int     `json:"iteration"`
+	BaseCost    float64 `json:"base_cost"`
+	BaseCI95    float64 `json:"base_ci95"`
+	RolloutCost float64 `json:"rollout_cost"`
+	RolloutCI95 float64 `json:"rollout_ci95"`
+	LearnedCost float64 `json:"learned_cost"`
+	LearnedCI95 float64 `json:"learned_ci95"`
+	Accuracy    float64 `json:"test_accuracy"`
+	// Held-out accuracy per position in the turn order.
+	AccuracyByPos []float64 `json:"test_accuracy_by_position"`
+	// The policies the guesses induce: a fleet deciding in parallel, every
+	// predecessor guessed (in order) by the net, or by the base policy;
+	// Retained = (parallel base - parallel learned) / (parallel base -
+	// rollout), from paired episodes.
+	ParallelBaseCost    float64 `json:"parallel_base_cost"`
+	ParallelBaseCI95    float64 `json:"parallel_base_ci95"`
+	ParallelLearnedCost float64 `json:"parallel_learned_cost"`
+	ParallelLearnedCI95 float64 `json:"parallel_learned_ci95"`
+	Retained            float64 `json:"retained"`
+	RetainedCI95        float64 `json:"retained_ci95"`
+	DaggerRounds        int     `json:"dagger_rounds"`
+	MajorityRate        float64 `json:"test_majority_rate"`
+	TrainAccuracy       float64 `json:"train_accuracy"`
+	Samples             int     `json:"train_samples"`
+	CollectSecs         float64 `json:"collect_seconds"`
+	TrainSecs           float64 `json:"train_seconds"`
+	ModelBytes          int     `json:"model_bytes"`
 }
 
 type trainReport struct {
@@ -56,7 +69,8 @@ func cmdTrain(args []string) error {
 	seed := fs.Uint64("seed", 1, "seed (the same seed retrains the same model, byte for byte)")
 	samples := fs.Int("samples", 8, "Monte Carlo samples per Q-factor in the rollout that makes the labels")
 	horizon := fs.Int("horizon", 15, "base-policy steps simulated after the first step")
-	hidden := fs.String("hidden", "32", "hidden layer sizes, e.g. 32 or 64,32")
+	hidden := fs.String("hidden", "64", "hidden layer sizes, e.g. 64 or 64,32")
+	dagger := fs.Int("dagger", 2, "rounds of on-policy data aggregation per iteration: play the fleet in parallel mode guessing with the new net, label the states it visits with rollout, retrain")
 	epochs := fs.Int("epochs", 30, "training epochs")
 	out := fs.String("out", "", "write the model of the iteration whose learned policy cost least here (a versioned model file)")
 	version := fs.Uint64("version", 0, "version to write into the model file (default: 1 plus the version already in --out, or 1); fleets take only higher versions")
@@ -75,6 +89,8 @@ func cmdTrain(args []string) error {
 		return fmt.Errorf("--iterations must be between 1 and 50, got %d", *iterations)
 	case *epochs < 1:
 		return fmt.Errorf("--epochs %d: want at least 1", *epochs)
+	case *dagger < 0 || *dagger > 20:
+		return fmt.Errorf("--dagger %d: want 0 to 20 rounds", *dagger)
 	case (decide.Config{Samples: *samples, Horizon: *horizon}).Validate() != nil:
 		return (decide.Config{Samples: *samples, Horizon: *horizon}).Validate()
 	}
@@ -119,7 +135,7 @@ func cmdTrain(args []string) error {
 	rep := trainReport{Scenario: m.Name(), Robots: m.Robots(), Features: feat.Version(), Out: *out}
 	var bar *progressbar.ProgressBar
 	if !*asJSON && term.IsTerminal(int(os.Stderr.Fd())) {
-		bar = progressbar.NewOptions(*iterations*4, progressbar.OptionSetWriter(os.Stderr),
+		bar = progressbar.NewOptions(*iterations*(4+*dagger), progressbar.OptionSetWriter(os.Stderr),
 			progressbar.OptionSetDescription("train"), progressbar.OptionClearOnFinish())
 	}
 	step := func(what string) {
@@ -147,26 +163,45 @@ func cmdTrain(args []string) error {
 		step(fmt.Sprintf("iteration %d: training", it))
 		t1 := time.Now()
 		var tr learn.TrainReport
-		net, tr = learn.Train(feat, train, learn.TrainConfig{Hidden: layers, Epochs: *epochs, Seed: itSeed,
-			CreatedBy: fmt.Sprintf("sim train, iteration %d", it)})
-		trainTime := time.Since(t1)
+		tcfg := learn.TrainConfig{Hidden: layers, Epochs: *epochs, Seed: itSeed, CreatedBy: fmt.Sprintf("sim train, iteration %d", it)}
+		net, tr = learn.Train(feat, train, tcfg)
+		var daggerCollect time.Duration
+		for r := 1; r <= *dagger; r++ {
+			step(fmt.Sprintf("iteration %d: on-policy data, round %d", it, r))
+			t2 := time.Now()
+			more, err := learn.CollectOnPolicy(m, dcfg, net, *episodes, model.Mix(itSeed, 0xda, uint64(r)), base)
+			if err != nil {
+				return err
+			}
+			daggerCollect += time.Since(t2)
+			if err := train.Append(more); err != nil {
+				return err
+			}
+			net, tr = learn.Train(feat, train, tcfg)
+		}
+		trainTime := time.Since(t1) - daggerCollect
+		collect += daggerCollect
 		acc := net.NoteHeldOut(test)
+		byPos := net.AccuracyByPosition(test)
 		blob, err := net.Marshal(uint64(it))
 		if err != nil {
 			return err
 		}
 		row := trainRow{Iteration: it, Accuracy: acc, MajorityRate: test.MajorityRate(), TrainAccuracy: tr.TrainAccuracy,
-			Samples: train.Len(), CollectSecs: collect.Seconds(), TrainSecs: trainTime.Seconds(), ModelBytes: len(blob)}
+			Samples: train.Len(), CollectSecs: collect.Seconds(), TrainSecs: trainTime.Seconds(), ModelBytes: len(blob),
+			AccuracyByPos: byPos, DaggerRounds: *dagger}
 		// Fresh evaluation episodes, the same for every policy and iteration.
 		step(fmt.Sprintf("iteration %d: evaluating", it))
 		evalSeed := model.Mix(*seed, 0xe7a1)
 		learned := learn.AsBase(m, net)
 		d := decide.New(base, dcfg)
-		policies := []decide.Policy{decide.Base{M: base}, nil, decide.Base{M: learned}}
-		costs := make([][]float64, 3)
+		policies := []decide.Policy{decide.Base{M: base}, nil, decide.Base{M: learned}, nil, nil}
+		costs := make([][]float64, len(policies))
 		for i := range *evalEpisodes {
 			es := episode.Seed(evalSeed, i)
 			policies[1] = decide.OneAtATimePolicy{D: d, Seed: episode.FleetSeed(es)}
+			policies[3] = &parallelGuess{d: d, m: base, seed: episode.FleetSeed(es)}
+			policies[4] = &parallelGuess{d: d, m: base, net: net, seed: episode.FleetSeed(es)}
 			for p, pol := range policies {
 				res, err := episode.Run(m, pol, es, nil)
 				if err != nil {
@@ -178,6 +213,13 @@ func cmdTrain(args []string) error {
 		row.BaseCost, row.BaseCI95 = episode.MeanCI95(costs[0])
 		row.RolloutCost, row.RolloutCI95 = episode.MeanCI95(costs[1])
 		row.LearnedCost, row.LearnedCI95 = episode.MeanCI95(costs[2])
+		row.ParallelBaseCost, row.ParallelBaseCI95 = episode.MeanCI95(costs[3])
+		row.ParallelLearnedCost, row.ParallelLearnedCI95 = episode.MeanCI95(costs[4])
+		gain, gap := make([]float64, *evalEpisodes), make([]float64, *evalEpisodes)
+		for i := range gain {
+			gain[i], gap[i] = costs[3][i]-costs[4][i], costs[3][i]-costs[1][i]
+		}
+		row.Retained, row.RetainedCI95 = episode.RatioCI95(gain, gap)
 		rep.Iterations = append(rep.Iterations, row)
 		if best == nil || row.LearnedCost < bestCost {
 			best, bestIt, bestCost = net, it, row.LearnedCost
@@ -208,9 +250,53 @@ func cmdTrain(args []string) error {
 			fmt.Sprintf("%.2f ±%.2f", r.BaseCost, r.BaseCI95), fmt.Sprintf("%.2f ±%.2f", r.RolloutCost, r.RolloutCI95),
 			fmt.Sprintf("%.2f ±%.2f", r.LearnedCost, r.LearnedCI95), r.Accuracy, r.MajorityRate, r.Samples, r.TrainSecs, r.ModelBytes)
 	}
-	fmt.Println("\niteration i+1's base policy is iteration i's learned policy.")
+	fmt.Printf("\nparallel fleets (every predecessor guessed) on the same episodes:\n%4s  %16s  %16s  %14s  %s\n",
+		"iter", "base guesses", "learned guesses", "retained", "held-out accuracy by turn position")
+	for _, r := range rep.Iterations {
+		fmt.Printf("%4d  %16s  %16s  %14s  %.3f\n", r.Iteration,
+			fmt.Sprintf("%.2f ±%.2f", r.ParallelBaseCost, r.ParallelBaseCI95), fmt.Sprintf("%.2f ±%.2f", r.ParallelLearnedCost, r.ParallelLearnedCI95),
+			fmt.Sprintf("%.3f ±%.3f", r.Retained, r.RetainedCI95), r.AccuracyByPos)
+	}
+	fmt.Println("\nretained = (parallel base - parallel learned) / (parallel base - rollout); iteration i+1's base policy is iteration i's learned policy.")
 	if *out != "" {
 		fmt.Printf("iteration %d's model (its learned policy cost least) written to %s as version %d\n", rep.Saved, *out, rep.Version)
 	}
 	return nil
+}
+
+// parallelGuess is a fleet deciding in parallel mode: every robot guesses
+// all its predecessors (in order, with net; nil: the base policy), then
+// takes its rollout turn.
+type parallelGuess struct {
+	d     *decide.Decider
+	m     model.Model
+	net   *learn.Net
+	seed  uint64
+	known []int
+}
+
+func (p *parallelGuess) Name() string { return "parallel" }
+
+func (p *parallelGuess) Decide(x model.State, round int, out []int) (decide.Stats, error) {
+	n := p.m.Robots()
+	if len(p.known) != n {
+		p.known = make([]int, n)
+	}
+	for k := range n {
+		for j := range p.known {
+			p.known[j] = -1
+		}
+		if p.net != nil {
+			for j := range k {
+				prior := p.known // robots 0..j-1 guessed already, the rest -1
+				if u := p.net.PredictGiven(x, j, j, prior); u >= 0 && u < p.m.NumControls(x, j) {
+					p.known[j] = u
+				} else {
+					p.known[j] = p.m.Base(x, j)
+				}
+			}
+		}
+		out[k], _ = p.d.Turn(x, k, p.known, decide.TurnSeed(p.seed, round, k))
+	}
+	return decide.Stats{}, nil
 }

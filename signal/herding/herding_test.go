@@ -105,9 +105,20 @@ func TestHerdingLearnedGuessesRecoverCoordination(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	net, rep := learn.Train(feat, data, learn.TrainConfig{Seed: 1})
+	net, rep := learn.Train(feat, data, trainConfig())
 	t.Logf("classifier: %d samples from %d episodes, train accuracy %.3f (majority %.3f), %v",
 		rep.Samples, nTrain, rep.TrainAccuracy, data.MajorityRate(), time.Since(t0).Round(time.Millisecond))
+	for it := 1; it <= daggerIterations(); it++ {
+		more, err := learn.CollectOnPolicy(m, effort, net, nTrain, trainSeed+uint64(it), nil)
+		if err != nil {
+			t.Fatal(err)
+		}
+		if err := data.Append(more); err != nil {
+			t.Fatal(err)
+		}
+		net, rep = learn.Train(feat, data, trainConfig())
+		t.Logf("DAgger %d: %d samples, train accuracy %.3f, %v", it, rep.Samples, rep.TrainAccuracy, time.Since(t0).Round(time.Millisecond))
+	}
 
 	base, _ := signal.New("base", m, signal.Options{})
 	learned, _ := signal.New("learned", m, signal.Options{Classifier: net})
@@ -154,7 +165,34 @@ func TestHerdingLearnedGuessesRecoverCoordination(t *testing.T) {
 	retained, rHalf := episode.RatioCI95(gain, gap)
 	retained = -retained
 	t.Logf("retained = (J_base_par - J_learned_par) / (J_base_par - J_seq) = %.3f ± %.3f (delta method)", retained, rHalf)
-	if retained < 0.5 {
-		t.Errorf("learned guesses retain %.3f of the coordination, want >= 0.5", retained)
+	// Target: 0.85 (state-only features without on-policy data kept
+	// 0.65; see signal/learn's package comment for each step's share).
+	if retained < 0.85 {
+		t.Errorf("learned guesses retain %.3f of the coordination, want >= 0.85", retained)
 	}
+}
+
+// daggerIterations: rounds of on-policy data aggregation (BATON_DAGGER
+// overrides, as BATON_HIDDEN and BATON_EPOCHS do the net's size and
+// training, for measuring each change).
+func daggerIterations() int {
+	if v := os.Getenv("BATON_DAGGER"); v != "" {
+		n := 0
+		fmt.Sscan(v, &n)
+		return n
+	}
+	return 3
+}
+
+func trainConfig() learn.TrainConfig {
+	c := learn.TrainConfig{Seed: 1, Hidden: []int{64}}
+	if v := os.Getenv("BATON_HIDDEN"); v != "" {
+		n := 0
+		fmt.Sscan(v, &n)
+		c.Hidden = []int{n}
+	}
+	if v := os.Getenv("BATON_EPOCHS"); v != "" {
+		fmt.Sscan(v, &c.Epochs)
+	}
+	return c
 }

@@ -25,6 +25,7 @@ type Dataset struct {
 	y       []int
 	valid   []bool // len*classes
 	episode []int  // episode index of each sample
+	pos     []int  // position in the turn order of each sample
 }
 
 // Len is the number of samples.
@@ -79,6 +80,7 @@ func (d *Dataset) appendFrom(src *Dataset, i int) {
 	d.y = append(d.y, src.y[i])
 	d.valid = append(d.valid, src.mask(i)...)
 	d.episode = append(d.episode, src.episode[i])
+	d.pos = append(d.pos, src.pos[i])
 }
 
 // Collect plays episodes seeded episodes of m under one-at-a-time rollout
@@ -108,6 +110,7 @@ func Collect(m model.Model, p decide.Config, episodes int, seed uint64, base mod
 	dec := decide.New(base, p)
 	x := m.NewState()
 	u := make([]int, robots)
+	prior := make([]int, robots)
 	rng := model.NewRNG(0)
 	for ep := range episodes {
 		es := episode.Seed(seed, ep)
@@ -118,7 +121,14 @@ func Collect(m model.Model, p decide.Config, episodes int, seed uint64, base mod
 			for k := range robots {
 				off := len(d.x)
 				d.x = slices.Grow(d.x, inputs)[:off+inputs]
-				f.Features(x, k, k, d.x[off:])
+				// Robot k decided knowing robots 0..k-1's controls.
+				for j := range prior {
+					prior[j] = -1
+					if j < k {
+						prior[j] = u[j]
+					}
+				}
+				f.Features(x, k, k, prior, d.x[off:])
 				nc := m.NumControls(x, k)
 				for c := range classes {
 					d.valid = append(d.valid, c < nc)
@@ -128,6 +138,7 @@ func Collect(m model.Model, p decide.Config, episodes int, seed uint64, base mod
 				}
 				d.y = append(d.y, u[k])
 				d.episode = append(d.episode, ep)
+				d.pos = append(d.pos, k)
 			}
 			rng.Reseed(episode.WorldSeed(es, step))
 			m.Step(x, u, rng.Rand)
@@ -173,4 +184,101 @@ func (d *Dataset) Split(testFrac float64, seed uint64) (train, test *Dataset) {
 	}
 	train.episodes, test.episodes = len(eps)-nTest, nTest
 	return train, test
+}
+
+// CollectOnPolicy is one round of on-policy data aggregation (DAgger: Ross,
+// Gordon & Bagnell, AISTATS 2011). It plays episodes with the fleet
+// deciding in parallel mode, every robot guessing all its predecessors in
+// order with net, so the states recorded are the ones such a fleet visits;
+// at each it labels every robot's turn with what one-at-a-time rollout
+// would choose there (given the true choices of the robots before it).
+// Episode i uses episode.Seed(seed, i) like Collect; append the result to
+// earlier data (Append) and retrain.
+//
+// base is the rollout's base policy as in Collect (nil: m).
+func CollectOnPolicy(m model.Model, p decide.Config, net *Net, episodes int, seed uint64, base model.Model) (*Dataset, error) {
+	if episodes < 1 {
+		return nil, errors.New("learn: CollectOnPolicy needs at least one episode")
+	}
+	if base == nil {
+		base = m
+	}
+	f, err := FeaturizerFor(m)
+	if err != nil {
+		return nil, err
+	}
+	if net == nil {
+		return nil, errors.New("learn: CollectOnPolicy needs a net to guess with")
+	}
+	robots, classes, inputs := m.Robots(), m.MaxControls(), f.Size()
+	d := &Dataset{scenario: f.Scenario(), version: f.Version(), robots: robots, inputs: inputs, classes: classes, episodes: episodes}
+	dec := decide.New(base, p)
+	x := m.NewState()
+	teacher, act := make([]int, robots), make([]int, robots)
+	prior, known := make([]int, robots), make([]int, robots)
+	rng := model.NewRNG(0)
+	for ep := range episodes {
+		es := episode.Seed(seed, ep)
+		episode.Start(m, es, x)
+		fleet := episode.FleetSeed(es)
+		for step := 1; step <= m.Horizon() && !m.Terminal(x); step++ {
+			dec.OneAtATime(x, nil, fleet, step, teacher)
+			for k := range robots {
+				off := len(d.x)
+				d.x = slices.Grow(d.x, inputs)[:off+inputs]
+				for j := range prior {
+					prior[j] = -1
+					if j < k {
+						prior[j] = teacher[j]
+					}
+				}
+				f.Features(x, k, k, prior, d.x[off:])
+				nc := m.NumControls(x, k)
+				for c := range classes {
+					d.valid = append(d.valid, c < nc)
+				}
+				d.y = append(d.y, teacher[k])
+				d.episode = append(d.episode, ep)
+				d.pos = append(d.pos, k)
+			}
+			// The fleet acts as a parallel one: robot k guesses robots
+			// 0..k-1 in order, then takes its rollout turn.
+			for k := range robots {
+				for j := range known {
+					known[j] = -1
+				}
+				for j := range k {
+					for i := range prior {
+						prior[i] = -1
+						if i < j {
+							prior[i] = known[i]
+						}
+					}
+					known[j] = net.PredictGiven(x, j, j, prior)
+					if known[j] < 0 || known[j] >= m.NumControls(x, j) {
+						known[j] = m.Base(x, j)
+					}
+				}
+				act[k], _ = dec.Turn(x, k, known, decide.TurnSeed(fleet, step, k))
+			}
+			rng.Reseed(episode.WorldSeed(es, step))
+			m.Step(x, act, rng.Rand)
+		}
+	}
+	return d, nil
+}
+
+// Append adds o's samples to d, its episodes numbered after d's (both
+// must come from one scenario and feature layout).
+func (d *Dataset) Append(o *Dataset) error {
+	if o.scenario != d.scenario || o.version != d.version || o.inputs != d.inputs || o.classes != d.classes {
+		return fmt.Errorf("learn: cannot append %s/%s data to %s/%s data", o.scenario, o.version, d.scenario, d.version)
+	}
+	for i := range o.Len() {
+		n := len(d.y)
+		d.appendFrom(o, i)
+		d.episode[n] = o.episode[i] + d.episodes
+	}
+	d.episodes += o.episodes
+	return nil
 }

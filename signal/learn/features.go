@@ -18,8 +18,13 @@ type Featurizer interface {
 	Version() string
 	// Size is the vector length.
 	Size() int
-	// Features fills dst (len Size()) for robot r deciding at position k.
-	Features(x model.State, r, k int, dst []float64) // dst fully overwritten
+	// Features fills dst (len Size()) for robot r deciding at position k,
+	// given its predecessors' controls where known: prior[j] is robot j's
+	// control this round, -1 when not known (nil: none known). Rollout
+	// decides robot r knowing its predecessors' choices; the features see
+	// the same, so robots in one place get told apart by what the robots
+	// before them do.
+	Features(x model.State, r, k int, prior []int, dst []float64) // dst fully overwritten
 }
 
 // modelOf is implemented by the package's featurizers; Predict uses it to
@@ -67,7 +72,9 @@ const (
 	hCloser   = hBlocked + 4 // 4 moves
 	hPull     = hCloser + 4  // 4 moves
 	hFree     = hPull + 4    // 4 moves
-	hSlicks   = hFree + 4    // harborNearest slots
+	hCrowd    = hFree + 4    // 4 moves: predecessors heading to that cell
+	hKnown    = hCrowd + 4   // share of predecessors whose control is known
+	hSlicks   = hKnown + 1   // harborNearest slots
 	hSlotSize = 6            // present, dx, dy, dist, nearer, tied
 	hSize     = hSlicks + harborNearest*hSlotSize
 )
@@ -86,7 +93,7 @@ func newHarborFeatures(m *harbor.Model) *harborFeatures {
 }
 
 func (f *harborFeatures) Scenario() string   { return "harbor" }
-func (f *harborFeatures) Version() string    { return "harbor.1" }
+func (f *harborFeatures) Version() string    { return "harbor.2" }
 func (f *harborFeatures) Size() int          { return hSize }
 func (f *harborFeatures) model() model.Model { return f.m }
 
@@ -101,11 +108,34 @@ func iabs(v int) int {
 	return v
 }
 
-func (f *harborFeatures) Features(x model.State, r, k int, dst []float64) {
+// maxHarborBoats bounds the boats the features track on the stack.
+const maxHarborBoats = 256
+
+func (f *harborFeatures) Features(x model.State, r, k int, prior []int, dst []float64) {
 	s := x.(*harbor.State)
 	clear(dst[:hSize])
 	w, h := f.w, f.h
 	me := s.Boats[r]
+	// Where the other boats will be: a predecessor whose control is known
+	// is where that control takes it, the rest where they are.
+	var at [maxHarborBoats]int32
+	boats := at[:min(len(s.Boats), maxHarborBoats)]
+	copy(boats, s.Boats)
+	known := 0
+	for j := range boats {
+		if j == r || j >= len(prior) || prior[j] < 0 || prior[j] > 4 {
+			continue
+		}
+		known++
+		c := prior[j]
+		nx, ny := int(boats[j])%w+hdx[c], int(boats[j])/w+hdy[c]
+		if nx >= 0 && nx < w && ny >= 0 && ny < h {
+			boats[j] = int32(ny*w + nx)
+		}
+	}
+	if k > 0 {
+		dst[hKnown] = float64(known) / float64(k)
+	}
 	bx, by := int(me)%w, int(me)/w
 	if w > 1 {
 		dst[hOwnX] = float64(bx) / float64(w-1)
@@ -114,12 +144,24 @@ func (f *harborFeatures) Features(x model.State, r, k int, dst []float64) {
 		dst[hOwnY] = float64(by) / float64(h-1)
 	}
 	share := 0
-	for j, b := range s.Boats {
+	for j, b := range boats {
 		if j != r && b == me {
 			share++
 		}
 	}
 	dst[hShare] = float64(share) / float64(f.robots)
+	for mv := 1; mv <= 4; mv++ {
+		nx, ny := bx+hdx[mv], by+hdy[mv]
+		if nx < 0 || nx >= w || ny < 0 || ny >= h {
+			continue
+		}
+		cell := int32(ny*w + nx)
+		for j, b := range boats {
+			if j != r && j < len(prior) && prior[j] >= 0 && b == cell {
+				dst[hCrowd+mv-1] += 1 / float64(f.robots)
+			}
+		}
+	}
 	position(k, f.robots, dst[hPos:])
 	if f.slicks > 0 {
 		dst[hLeft] = float64(s.Left) / float64(f.slicks)
@@ -167,7 +209,7 @@ func (f *harborFeatures) Features(x model.State, r, k int, dst []float64) {
 		tx, ty := int(c)%w, int(c)/w
 		d := iabs(tx-bx) + iabs(ty-by)
 		mine := true
-		for j, b := range s.Boats {
+		for j, b := range boats {
 			if j != r && iabs(int(b)%w-tx)+iabs(int(b)/w-ty) < d {
 				mine = false
 				break
@@ -200,7 +242,7 @@ func (f *harborFeatures) Features(x model.State, r, k int, dst []float64) {
 		slot[2] = float64(ty-by) / float64(h)
 		slot[3] = float64(d) / span
 		nearer, tied := 0, 0
-		for j, b := range s.Boats {
+		for j, b := range boats {
 			if j == r {
 				continue
 			}
@@ -316,7 +358,7 @@ func probeThreshold(m *upkeep.Model) int {
 }
 
 func (f *upkeepFeatures) Scenario() string   { return "upkeep" }
-func (f *upkeepFeatures) Version() string    { return "upkeep.1" }
+func (f *upkeepFeatures) Version() string    { return "upkeep.2" }
 func (f *upkeepFeatures) Size() int          { return uMoves + f.moves*uMoveSize }
 func (f *upkeepFeatures) model() model.Model { return f.m }
 
@@ -332,10 +374,29 @@ func (f *upkeepFeatures) siteRisk(x model.State, site int) (ec, pT float64) {
 	return ec / f.maxCost, pT
 }
 
-func (f *upkeepFeatures) Features(x model.State, r, k int, dst []float64) {
+// maxUpkeepRobots bounds the robots the features track on the stack.
+const maxUpkeepRobots = 256
+
+func (f *upkeepFeatures) Features(x model.State, r, k int, prior []int, dst []float64) {
 	m := f.m
 	clear(dst[:f.Size()])
-	pos := m.Positions(x)
+	// Where the other robots will be: a predecessor whose control is known
+	// is at the site it moves to (0 services where it is), the rest where
+	// they are.
+	var at0 [maxUpkeepRobots]int
+	pos := at0[:0]
+	for j, p := range m.Positions(x) {
+		if j >= maxUpkeepRobots {
+			break
+		}
+		p := int(p)
+		if j != r && j < len(prior) && prior[j] > 0 {
+			if nb := m.Neighbours(p); prior[j]-1 < len(nb) {
+				p = nb[prior[j]-1]
+			}
+		}
+		pos = append(pos, p)
+	}
 	at := pos[r]
 	position(k, f.robots, dst[uPos:])
 	share := 0

@@ -296,7 +296,8 @@ func (n *Net) boundTo(m model.Model) (*Net, error) {
 		return nil, err
 	}
 	if n.meta.FeatureVersion != f.Version() {
-		return nil, refuse(ErrFeatureVersion, "model uses feature version %q, this build computes %q", n.meta.FeatureVersion, f.Version())
+		return nil, refuse(ErrFeatureVersion, "model uses feature version %q, this build computes %q: retrain it (sim train --scenario %s --robots N --out FILE)",
+			n.meta.FeatureVersion, f.Version(), f.Scenario())
 	}
 	if n.Inputs() != f.Size() {
 		return nil, refuse(ErrShape, "shape mismatch: model takes %d inputs, this fleet's features have %d", n.Inputs(), f.Size())

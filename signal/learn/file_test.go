@@ -117,13 +117,13 @@ func TestModelFileRefusals(t *testing.T) {
 	}
 	wrongInputs := func() []byte {
 		n := newNet(10, []int{3}, 5, Tanh)
-		n.meta.Scenario, n.meta.FeatureVersion = "harbor", "harbor.1"
+		n.meta.Scenario, n.meta.FeatureVersion = "harbor", "harbor.2"
 		b, _ := n.Marshal(1)
 		return b
 	}
 	wrongOutputs := func() []byte {
 		n := newNet(h.f.Size(), []int{3}, 4, Tanh)
-		n.meta.Scenario, n.meta.FeatureVersion = "harbor", "harbor.1"
+		n.meta.Scenario, n.meta.FeatureVersion = "harbor", "harbor.2"
 		b, _ := n.Marshal(1)
 		return b
 	}

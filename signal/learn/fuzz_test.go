@@ -87,9 +87,9 @@ func bodySeeds(tb testing.TB, good []byte) [][]byte {
 	}
 	return [][]byte{
 		body,
-		small("harbor", "harbor.1", 54, []int{1}, 5, ReLU),
+		small("harbor", "harbor.2", 59, []int{1}, 5, ReLU),
 		small("", "", 1, []int{1}, 1, Tanh),
-		small("upkeep", "upkeep.1", 2, []int{2, 2}, 3, ReLU),
+		small("upkeep", "upkeep.2", 2, []int{2, 2}, 3, ReLU),
 		{},
 		bytes.Repeat([]byte{0xff}, 40),
 		unpacked,
@@ -105,7 +105,7 @@ func bodySeeds(tb testing.TB, good []byte) [][]byte {
 		edit(func(pb *batonpb.GuessModel) { pb.Inputs = math.MaxUint32 }),
 		edit(func(pb *batonpb.GuessModel) { pb.Outputs = 99 }),
 		edit(func(pb *batonpb.GuessModel) { pb.Activation = 7 }),
-		edit(func(pb *batonpb.GuessModel) { pb.Scenario, pb.FeatureVersion = "upkeep", "upkeep.1" }),
+		edit(func(pb *batonpb.GuessModel) { pb.Scenario, pb.FeatureVersion = "upkeep", "upkeep.2" }),
 		edit(func(pb *batonpb.GuessModel) { pb.FeatureVersion = "harbor.0" }),
 		edit(func(pb *batonpb.GuessModel) { pb.Training = nil }),
 		// A layer count far over the limit, each layer two bytes.

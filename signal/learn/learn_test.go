@@ -147,7 +147,7 @@ func TestFeaturizerFor(t *testing.T) {
 	hm, _ := harbor.Default(4)
 	um, _ := upkeep.Default(3)
 	hf, err := FeaturizerFor(hm)
-	if err != nil || hf.Size() != 54 || hf.Scenario() != "harbor" || hf.Version() != "harbor.1" {
+	if err != nil || hf.Size() != 59 || hf.Scenario() != "harbor" || hf.Version() != "harbor.2" {
 		t.Fatalf("harbor: %v %v", hf, err)
 	}
 	uf, err := FeaturizerFor(um)
@@ -166,12 +166,12 @@ func TestFeaturizerFor(t *testing.T) {
 	x := hm.NewState()
 	hm.Start(x, model.NewRNG(1).Rand)
 	a, b := make([]float64, hf.Size()), make([]float64, hf.Size())
-	hf.Features(x, 0, 0, a)
-	hf.Features(x, 1, 1, b)
+	hf.Features(x, 0, 0, nil, a)
+	hf.Features(x, 1, 1, nil, b)
 	if slices.Equal(a, b) {
 		t.Error("positions 0 and 1 at the dock give the same features")
 	}
-	hf.Features(x, 1, 0, b)
+	hf.Features(x, 1, 0, nil, b)
 	if !slices.Equal(a, b) {
 		t.Error("two boats on the dock at the same position should look alike")
 	}
@@ -250,3 +250,38 @@ func TestAsBase(t *testing.T) {
 
 // plainModel hides every optional interface of the scenario.
 type plainModel struct{ model.Model }
+
+// On-policy aggregation: CollectOnPolicy labels the states a parallel
+// fleet guessing with the net visits, replays exactly for a seed, and
+// appends to earlier data with its episodes numbered after them; per
+// position accuracy covers every position in the order.
+func TestCollectOnPolicy(t *testing.T) {
+	for _, name := range []string{"harbor", "upkeep"} {
+		fx := getFixture(t, name)
+		a, err := CollectOnPolicy(fx.m, testRollout, fx.net, 2, 9, nil)
+		if err != nil {
+			t.Fatal(err)
+		}
+		b, _ := CollectOnPolicy(fx.m, testRollout, fx.net, 2, 9, nil)
+		if a.Len() == 0 || !slices.Equal(a.x, b.x) || !slices.Equal(a.y, b.y) {
+			t.Fatalf("%s: %d samples, replayed equal: %v", name, a.Len(), slices.Equal(a.y, b.y))
+		}
+		all := fx.all.emptyLike()
+		for i := range fx.all.Len() {
+			all.appendFrom(fx.all, i)
+		}
+		all.episodes = fx.all.episodes
+		n, eps := all.Len(), all.episodes
+		if err := all.Append(a); err != nil {
+			t.Fatal(err)
+		}
+		if all.Len() != n+a.Len() || all.episodes != eps+2 || all.episode[n] != eps {
+			t.Fatalf("%s: appended %d samples to %d: %d, episodes %d", name, a.Len(), n, all.Len(), all.episodes)
+		}
+		byPos := fx.net.AccuracyByPosition(fx.test)
+		if len(byPos) != fx.m.Robots() {
+			t.Fatalf("%s: accuracy at %d positions, %d robots", name, len(byPos), fx.m.Robots())
+		}
+		t.Logf("%s: held-out accuracy by position %.3f", name, byPos)
+	}
+}

@@ -196,12 +196,16 @@ func argmaxValid(logits []float64, valid int) int {
 // order in x: the most likely valid control. It allocates nothing in
 // steady state and is safe for concurrent use. It panics on a net not bound
 // to a model (one from Unmarshal: use Check or Load).
-func (n *Net) Predict(x model.State, r, k int) int {
+func (n *Net) Predict(x model.State, r, k int) int { return n.PredictGiven(x, r, k, nil) }
+
+// PredictGiven is Predict knowing some predecessors' controls (prior[j],
+// -1 where not known; see Featurizer).
+func (n *Net) PredictGiven(x model.State, r, k int, prior []int) int {
 	if n.f == nil {
 		panic("learn: Predict on a net not bound to a model (use Check or Load, not Unmarshal)")
 	}
 	s := n.pool.Get().(*scratch)
-	n.f.Features(x, r, k, s.feat)
+	n.f.Features(x, r, k, prior, s.feat)
 	logits := n.forward(s.feat, s)
 	valid := n.Outputs()
 	if n.m != nil {
@@ -230,6 +234,33 @@ func (n *Net) Accuracy(d *Dataset) float64 {
 		}
 	}
 	return float64(hit) / float64(d.Len())
+}
+
+// AccuracyByPosition is Accuracy per position in the turn order (index
+// k), for the positions d has samples of.
+func (n *Net) AccuracyByPosition(d *Dataset) []float64 {
+	if d == nil || d.Len() == 0 {
+		return nil
+	}
+	s := n.newScratch()
+	var hit, all []int
+	for i := range d.Len() {
+		k := d.pos[i]
+		for len(all) <= k {
+			hit, all = append(hit, 0), append(all, 0)
+		}
+		all[k]++
+		if argmaxMasked(n.forward(d.row(i), s), d.mask(i)) == d.y[i] {
+			hit[k]++
+		}
+	}
+	out := make([]float64, len(all))
+	for k := range all {
+		if all[k] > 0 {
+			out[k] = float64(hit[k]) / float64(all[k])
+		}
+	}
+	return out
 }
 
 func argmaxMasked(logits []float64, mask []bool) int {

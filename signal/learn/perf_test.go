@@ -14,7 +14,7 @@ func TestFeaturesAndPredictDoNotAllocate(t *testing.T) {
 			i := 0
 			if a := testing.AllocsPerRun(200, func() {
 				x := fx.states[i%len(fx.states)]
-				fx.f.Features(x, i%R, (i/R)%R, dst)
+				fx.f.Features(x, i%R, (i/R)%R, nil, dst)
 				i++
 			}); a != 0 {
 				t.Errorf("Features: %v allocations per call", a)
@@ -107,7 +107,7 @@ func BenchmarkFeatures(b *testing.B) {
 			b.ReportAllocs()
 			i := 0
 			for b.Loop() {
-				fx.f.Features(fx.states[i%len(fx.states)], i%R, i%R, dst)
+				fx.f.Features(fx.states[i%len(fx.states)], i%R, i%R, nil, dst)
 				i++
 			}
 		})

@@ -64,7 +64,8 @@ type fileYAML struct {
 }
 
 type trainYAML struct {
-	Episodes int `yaml:"episodes"`
+	Episodes int  `yaml:"episodes"`
+	Dagger   *int `yaml:"dagger"`
 }
 
 type faultYAML struct {
@@ -119,7 +120,7 @@ type Drill struct {
 	// The fleet's timing, in virtual time for message drills.
 	TurnBudget, Period, Hop, Jitter, TurnTime time.Duration
 	GuessModel                                string
-	TrainEpisodes                             int
+	TrainEpisodes, TrainDagger                int
 	// Faults apply to every configuration; Points are the sweep.
 	Faults []fault.Spec
 	Points []Point
@@ -252,12 +253,18 @@ func Parse(name string, data []byte) (*Drill, error) {
 	if d.GuessModel != "" && !strings.HasPrefix(d.GuessModel, "/") {
 		d.GuessModel = joinDir(name, d.GuessModel)
 	}
-	d.TrainEpisodes = 30
+	d.TrainEpisodes, d.TrainDagger = 30, 2
 	if y.Train != nil {
 		if y.Train.Episodes < 1 || y.Train.Episodes > 10000 {
 			return nil, doc.Errorf("train.episodes", "%d: want 1..10000", y.Train.Episodes)
 		}
 		d.TrainEpisodes = y.Train.Episodes
+		if y.Train.Dagger != nil {
+			if *y.Train.Dagger < 0 || *y.Train.Dagger > 20 {
+				return nil, doc.Errorf("train.dagger", "%d: want 0..20 rounds", *y.Train.Dagger)
+			}
+			d.TrainDagger = *y.Train.Dagger
+		}
 	}
 	if len(y.Faults) > MaxFaults {
 		return nil, doc.Errorf("faults", "%d faults: at most %d", len(y.Faults), MaxFaults)

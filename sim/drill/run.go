@@ -102,7 +102,18 @@ func (d *Drill) Classifier() (*learn.Net, error) {
 	if err != nil {
 		return nil, fmt.Errorf("training the guess model: %w", err)
 	}
-	net, _ := learn.Train(feat, data, learn.TrainConfig{Seed: d.Seed})
+	cfg := learn.TrainConfig{Seed: d.Seed, Hidden: []int{64}}
+	net, _ := learn.Train(feat, data, cfg)
+	for r := 1; r <= d.TrainDagger; r++ {
+		more, err := learn.CollectOnPolicy(d.Model, d.Decide, net, d.TrainEpisodes, model.Mix(d.Seed, 0xda, uint64(r)), nil)
+		if err != nil {
+			return nil, fmt.Errorf("training the guess model: %w", err)
+		}
+		if err := data.Append(more); err != nil {
+			return nil, err
+		}
+		net, _ = learn.Train(feat, data, cfg)
+	}
 	return net, nil
 }
 
