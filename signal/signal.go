@@ -65,6 +65,12 @@ type InOrder interface {
 	PredictGiven(x model.State, r, k int, prior []int) int
 }
 
+// Confident is an InOrder classifier that also says how sure it is (the
+// probability it gives its guess).
+type Confident interface {
+	PredictConfident(x model.State, r, k int, prior []int) (int, float64)
+}
+
 // Options configure New.
 type Options struct {
 	// Classifier backs learned (and recompute's default fallback); nil
@@ -73,13 +79,16 @@ type Options struct {
 	// Fallback fills recompute's remaining predecessors once the budget is
 	// spent; nil: learned when a Classifier is set, else base.
 	Fallback Source
+	// Confidence is checked's threshold: a learned guess less sure than
+	// this is recomputed (0: DefaultConfidence).
+	Confidence float64
 	// MaxRecompute caps the predecessors recompute recomputes per Fill,
 	// a budget in compute rather than time (0: no cap).
 	MaxRecompute int
 }
 
 // Names lists the guess sources this build knows, cheapest first.
-func Names() []string { return []string{"base", "last", "recompute", "learned"} }
+func Names() []string { return []string{"base", "last", "recompute", "learned", "checked"} }
 
 // New returns the named guess source for m ("" means base).
 func New(name string, m model.Model, opts Options) (Source, error) {
@@ -96,6 +105,8 @@ func New(name string, m model.Model, opts Options) (Source, error) {
 			fb = defaultFallback(m, opts.Classifier)
 		}
 		return NewRecompute(m, fb, opts.MaxRecompute), nil
+	case "checked":
+		return NewChecked(m, opts.Classifier, opts.Confidence, opts.MaxRecompute), nil
 	}
 	return nil, fmt.Errorf("unknown guess source %q (known: %s)", name, strings.Join(Names(), ", "))
 }
@@ -307,3 +318,92 @@ func (s *Sources) Get(name string) (Source, string) {
 
 // Fallback is the source used for names that cannot be made.
 func (s *Sources) Fallback() Source { return s.fallback }
+
+// DefaultConfidence is checked's default threshold: chosen on the herding
+// case (see signal/herding), where below it guesses are wrong often enough
+// to be worth a turn of compute.
+const DefaultConfidence = 0.8
+
+// Paths counts how checked made its guesses.
+type Paths struct {
+	Confident  uint64 `json:"confident"`  // the learned guess, sure enough
+	Recomputed uint64 `json:"recomputed"` // weak: the predecessor's turn recomputed
+	FellBack   uint64 `json:"fell_back"`  // weak, but no time left: the learned guess anyway
+}
+
+// Checked guesses with the learned classifier, in turn order, and
+// recomputes (as recompute does) only the predecessors whose guess it is
+// less sure of than its threshold, while the time budget lasts; a weak
+// guess out of time is used anyway. Without a classifier every guess is
+// weak. Like Recompute it is not safe for concurrent use.
+type Checked struct {
+	m         model.Model
+	learned   Learned
+	conf      Confident
+	threshold float64
+	rec       *Recompute
+	paths     Paths
+}
+
+// NewChecked returns checked for m with classifier c (nil: none loaded).
+func NewChecked(m model.Model, c Classifier, threshold float64, maxRecompute int) *Checked {
+	if !(threshold > 0 && threshold <= 1) {
+		threshold = DefaultConfidence
+	}
+	ch := &Checked{m: m, learned: Learned{M: m, C: c}, threshold: threshold, rec: NewRecompute(m, Base{M: m}, maxRecompute)}
+	ch.conf, _ = c.(Confident)
+	return ch
+}
+
+func (*Checked) Name() string { return "checked" }
+
+// Paths is how the guesses so far were made.
+func (c *Checked) Paths() Paths { return c.paths }
+
+func (c *Checked) Fill(ctx *Context, missing []int, out []int) {
+	var buf [model.MaxRobots]int
+	prior := buf[:min(len(out), model.MaxRobots)]
+	recomputed := 0
+	for _, j := range missing {
+		k := position(ctx.Order, j)
+		u, sure := -1, 0.0
+		if c.conf != nil && k >= 0 {
+			for p := range prior {
+				prior[p] = -1
+			}
+			for _, p := range ctx.Order[:k] {
+				if p < len(prior) {
+					prior[p] = out[p]
+				}
+			}
+			u, sure = c.conf.PredictConfident(ctx.X, j, k, prior)
+			if !valid(c.m, ctx.X, j, u) {
+				u, sure = -1, 0
+			}
+		}
+		switch {
+		case u >= 0 && sure >= c.threshold:
+			out[j] = u
+			c.paths.Confident++
+		case k >= 0 && (c.rec.max == 0 || recomputed < c.rec.max) && (ctx.Expired == nil || !ctx.Expired()):
+			// Expired is asked once per turn recomputed (it books the time).
+			r := c.rec
+			for p := range r.known {
+				r.known[p] = -1
+			}
+			for _, p := range ctx.Order[:k] {
+				r.known[p] = out[p]
+			}
+			out[j], _ = r.dec.Turn(ctx.X, j, r.known, decide.TurnSeed(ctx.Seed, int(ctx.Round), j), ctx.Decide)
+			recomputed++
+			c.paths.Recomputed++
+		default:
+			if u < 0 {
+				out[j] = c.m.Base(ctx.X, j)
+			} else {
+				out[j] = u
+			}
+			c.paths.FellBack++
+		}
+	}
+}

@@ -74,7 +74,7 @@ func neg(n int) []int {
 
 func TestNewAndNames(t *testing.T) {
 	m := harbor4(t)
-	if got := signal.Names(); !slices.Equal(got, []string{"base", "last", "recompute", "learned"}) {
+	if got := signal.Names(); !slices.Equal(got, []string{"base", "last", "recompute", "learned", "checked"}) {
 		t.Fatalf("Names() = %v", got)
 	}
 	for _, name := range signal.Names() {
@@ -380,4 +380,49 @@ func ExampleNew() {
 	src.Fill(c, []int{0}, out)
 	fmt.Println(src.Name(), out)
 	// Output: last [1 -1]
+}
+
+// sureClassifier guesses control 1 for every robot, sure of robot 0 only.
+type sureClassifier struct{}
+
+func (sureClassifier) Predict(x model.State, r, k int) int { return 1 }
+func (sureClassifier) PredictConfident(_ model.State, r, _ int, _ []int) (int, float64) {
+	if r == 0 {
+		return 1, 0.95
+	}
+	return 1, 0.4
+}
+
+// checked keeps the sure guesses, recomputes the weak ones while there is
+// time (exactly recompute's result: the one-at-a-time turn), uses the weak
+// guess once out of time, and counts each path.
+func TestChecked(t *testing.T) {
+	m := harbor4(t)
+	x := spread(m, 8, 2)
+	order := []int{0, 1, 2, 3}
+	ch := signal.NewChecked(m, sureClassifier{}, 0.8, 0)
+	c := &signal.Context{X: x, Round: 4, Order: order, Robot: 3, Known: neg(4), Seed: 9, Decide: small}
+	out := slices.Clone(c.Known)
+	fill(t, ch, c, []int{0, 1, 2}, out)
+	// Robot 0 is guessed 1 (sure); 1 and 2 recomputed given the guesses
+	// before them, as recompute would given the same.
+	rec := slices.Clone(c.Known)
+	rec[0] = 1
+	fill(t, signal.NewRecompute(m, signal.Base{M: m}, 0), c, []int{1, 2}, rec)
+	if out[0] != 1 || out[1] != rec[1] || out[2] != rec[2] {
+		t.Fatalf("got %v, want 1 then recompute's %v", out, rec)
+	}
+	if p := ch.Paths(); p.Confident != 1 || p.Recomputed != 2 || p.FellBack != 0 {
+		t.Fatalf("%+v", p)
+	}
+	budget := 1
+	c.Expired = func() bool { budget--; return budget < 0 }
+	out = slices.Clone(c.Known)
+	fill(t, ch, c, []int{0, 1, 2}, out)
+	if out[2] != 1 {
+		t.Fatalf("out of time, robot 2's weak guess 1 should stand: %v", out)
+	}
+	if p := ch.Paths(); p.Confident != 2 || p.Recomputed != 3 || p.FellBack != 1 {
+		t.Fatalf("%+v", p)
+	}
 }

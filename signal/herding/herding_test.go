@@ -122,15 +122,17 @@ func TestHerdingLearnedGuessesRecoverCoordination(t *testing.T) {
 
 	base, _ := signal.New("base", m, signal.Options{})
 	learned, _ := signal.New("learned", m, signal.Options{Classifier: net})
+	checked := signal.NewChecked(m, net, confidence(), 0)
 	f := &fleet{m: m, d: decide.New(m, effort), order: []int{0, 1, 2, 3},
 		none: []int{-1, -1, -1, -1}, known: make([]int, m.Robots()), u: make([]int, m.Robots())}
-	var seq, par, parLearned, basePol []float64
+	var seq, par, parLearned, parChecked, basePol []float64
 	t1 := time.Now()
 	for i := range nEval {
 		es := episode.Seed(evalSeed, i)
 		seq = append(seq, f.play(es, way{sequential: true}))
 		par = append(par, f.play(es, way{guess: base}))
 		parLearned = append(parLearned, f.play(es, way{guess: learned}))
+		parChecked = append(parChecked, f.play(es, way{guess: checked}))
 		basePol = append(basePol, f.play(es, way{}))
 	}
 	t.Logf("%d episodes x 4 ways in %v", nEval, time.Since(t1).Round(time.Millisecond))
@@ -150,6 +152,14 @@ func TestHerdingLearnedGuessesRecoverCoordination(t *testing.T) {
 	t.Logf("sequential (one-at-a-time)  %s", ci(seq))
 	t.Logf("parallel, base guesses      %s", ci(par))
 	t.Logf("parallel, learned guesses   %s", ci(parLearned))
+	p := checked.Paths()
+	t.Logf("parallel, checked guesses   %s (confidence %.2f: %d sure, %d recomputed, %d fell back: %.1f%% of guesses recomputed)",
+		ci(parChecked), confidence(), p.Confident, p.Recomputed, p.FellBack, 100*float64(p.Recomputed)/float64(p.Confident+p.Recomputed+p.FellBack))
+	cr, crHalf := episode.RatioCI95(diff(par, parChecked), diff(par, seq))
+	t.Logf("checked retains %.3f ± %.3f", cr, crHalf)
+	if cr < retainedLearned(par, parLearned, seq) {
+		t.Errorf("recomputing weak guesses retained less (%.3f) than learned alone", cr)
+	}
 
 	gap := diff(par, seq)
 	gain := diff(parLearned, par)
@@ -195,4 +205,22 @@ func trainConfig() learn.TrainConfig {
 		fmt.Sscan(v, &c.Epochs)
 	}
 	return c
+}
+
+func confidence() float64 {
+	if v := os.Getenv("BATON_CONFIDENCE"); v != "" {
+		c := 0.0
+		fmt.Sscan(v, &c)
+		return c
+	}
+	return signal.DefaultConfidence
+}
+
+func retainedLearned(par, learned, seq []float64) float64 {
+	gain, gap := make([]float64, len(par)), make([]float64, len(par))
+	for i := range par {
+		gain[i], gap[i] = par[i]-learned[i], par[i]-seq[i]
+	}
+	r, _ := episode.RatioCI95(gain, gap)
+	return r
 }

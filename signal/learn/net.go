@@ -201,6 +201,13 @@ func (n *Net) Predict(x model.State, r, k int) int { return n.PredictGiven(x, r,
 // PredictGiven is Predict knowing some predecessors' controls (prior[j],
 // -1 where not known; see Featurizer).
 func (n *Net) PredictGiven(x model.State, r, k int, prior []int) int {
+	c, _ := n.PredictConfident(x, r, k, prior)
+	return c
+}
+
+// PredictConfident is PredictGiven with the net's confidence in its guess:
+// the softmax probability of the chosen control among the valid ones.
+func (n *Net) PredictConfident(x model.State, r, k int, prior []int) (int, float64) {
 	if n.f == nil {
 		panic("learn: Predict on a net not bound to a model (use Check or Load, not Unmarshal)")
 	}
@@ -212,8 +219,12 @@ func (n *Net) PredictGiven(x model.State, r, k int, prior []int) int {
 		valid = min(valid, n.m.NumControls(x, r))
 	}
 	c := argmaxValid(logits, valid)
+	sum := 0.0
+	for i := range min(valid, len(logits)) {
+		sum += math.Exp(logits[i] - logits[c])
+	}
 	n.pool.Put(s)
-	return c
+	return c, 1 / sum
 }
 
 // Accuracy is the share of d's samples whose recorded control the net

@@ -76,7 +76,7 @@ func TestDemoFileParses(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	if len(d.Points) != 3*4*4 || d.Model.Robots() != 6 || d.Rounds != 200 {
+	if len(d.Points) != 3*5*4 || d.Model.Robots() != 6 || d.Rounds != 200 {
 		t.Fatalf("%d points, %d robots, %d rounds", len(d.Points), d.Model.Robots(), d.Rounds)
 	}
 	for _, f := range []string{"../../deploy/examples/drill-restarts.yaml"} {

@@ -33,6 +33,8 @@ type Episode struct {
 	Events []string
 	// VirtualTime is the fleet time the run took (0 for real processes).
 	VirtualTime time.Duration
+	// Paths: how the checked source made its guesses.
+	Paths signal.Paths
 }
 
 // Cost is the episode's total stage cost.
@@ -148,7 +150,7 @@ func RunVirtual(j Job) (Episode, error) {
 	if err != nil {
 		return Episode{}, fmt.Errorf("%s, episode %d: %w", j.Point.Name(), j.Episode, err)
 	}
-	return Episode{Rounds: rounds, Faults: f.FaultStats(), Late: f.Late(), VirtualTime: f.Now()}, nil
+	return Episode{Rounds: rounds, Faults: f.FaultStats(), Late: f.Late(), VirtualTime: f.Now(), Paths: f.GuessPaths()}, nil
 }
 
 // SoftwareWait is how long a robot's own software waits for a round's
@@ -185,7 +187,7 @@ func Run(ctx context.Context, d *Drill, o Options) (*result.Report, error) {
 	if o.Classifier != nil { // a nil *Net in the interface would not read as nil
 		guesses.Classifier = o.Classifier
 	}
-	if guesses.Classifier == nil && slices.ContainsFunc(d.Points, func(p Point) bool { return p.Guess == "learned" }) {
+	if guesses.Classifier == nil && slices.ContainsFunc(d.Points, func(p Point) bool { return p.Guess == "learned" || p.Guess == "checked" }) {
 		net, err := d.Classifier()
 		if err != nil {
 			return nil, err
@@ -356,6 +358,11 @@ func summarize(d *Drill, p Point, eps []Episode, base, seq []float64) result.Con
 		c.Duplicated += ep.Faults.Duplicated
 		c.Late += ep.Late
 		c.Events = append(c.Events, ep.Events...)
+		if p.Guess == "checked" {
+			c.GuessPaths.Confident += ep.Paths.Confident
+			c.GuessPaths.Recomputed += ep.Paths.Recomputed
+			c.GuessPaths.FellBack += ep.Paths.FellBack
+		}
 		for _, r := range ep.Rounds {
 			lat = append(lat, float64(r.LatencyUs)/1000)
 			c.HeldRounds += r.Held

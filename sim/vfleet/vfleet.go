@@ -183,6 +183,16 @@ func (f *Fleet) FaultStats() fault.Stats {
 	return f.faults.Stats()
 }
 
+// GuessPaths is how the checked source made its guesses (zero when the
+// fleet never used it).
+func (f *Fleet) GuessPaths() signal.Paths {
+	src, why := f.sources.Get("checked")
+	if ch, ok := src.(*signal.Checked); ok && why == "" {
+		return ch.Paths()
+	}
+	return signal.Paths{}
+}
+
 // Late counts valid decisions that came too late: after the receiving
 // robot's own turn, or after the coordinator closed the round.
 func (f *Fleet) Late() uint64 { return f.late + f.coord.Late() }
@@ -453,7 +463,7 @@ func (f *Fleet) computeTurn(r *robot, c turn.Compute) {
 		}
 		src, _ := f.sources.Get(c.GuessSource)
 		src.Fill(ctx, c.Guess, known)
-		if src.Name() == "recompute" {
+		if src.Name() == "recompute" || src.Name() == "checked" {
 			took += recomputed
 		}
 	}

@@ -62,18 +62,28 @@ type Config struct {
 	// ModeSwitches: rounds played in parallel by the automatic switch, and
 	// how many rounds it took to switch after a link degraded and back
 	// after it recovered (0 when it did not happen).
-	ParallelRounds  int       `json:"parallel_rounds,omitempty"`
-	SwitchAfter     int       `json:"switch_after_rounds,omitempty"`
-	SwitchBackAfter int       `json:"switch_back_after_rounds,omitempty"`
-	Latency         Histogram `json:"latency_hist"`
-	PerRobot        []Robot   `json:"per_robot"`
-	EpisodeCosts    []float64 `json:"episode_costs"`
-	WorstEpisode    int       `json:"worst_episode"`     // index into EpisodeCosts
-	Process         bool      `json:"process,omitempty"` // run as real processes
-	Events          []string  `json:"events,omitempty"`  // what a process drill did, in order
+	ParallelRounds  int `json:"parallel_rounds,omitempty"`
+	SwitchAfter     int `json:"switch_after_rounds,omitempty"`
+	SwitchBackAfter int `json:"switch_back_after_rounds,omitempty"`
+	// GuessPaths: how the checked source made its guesses (sure learned
+	// guesses, weak ones recomputed, weak ones kept for lack of time).
+	GuessPaths   GuessPaths `json:"guess_paths"`
+	Latency      Histogram  `json:"latency_hist"`
+	PerRobot     []Robot    `json:"per_robot"`
+	EpisodeCosts []float64  `json:"episode_costs"`
+	WorstEpisode int        `json:"worst_episode"`     // index into EpisodeCosts
+	Process      bool       `json:"process,omitempty"` // run as real processes
+	Events       []string   `json:"events,omitempty"`  // what a process drill did, in order
 }
 
 // Histogram of round latencies: Counts[i] rounds took [EdgesMs[i],
+// GuessPaths counts the checked source's paths.
+type GuessPaths struct {
+	Confident  uint64 `json:"confident"`
+	Recomputed uint64 `json:"recomputed"`
+	FellBack   uint64 `json:"fell_back"`
+}
+
 // EdgesMs[i+1]) milliseconds.
 type Histogram struct {
 	EdgesMs []float64 `json:"edges_ms"`
