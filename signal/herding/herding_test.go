@@ -18,6 +18,7 @@ import (
 	"baton/sim/episode"
 	"baton/sim/harbor"
 	"baton/sim/model"
+	"baton/sim/upkeep"
 )
 
 // effort is the fleet's Monte Carlo effort for training and for play.
@@ -223,4 +224,79 @@ func retainedLearned(par, learned, seq []float64) float64 {
 	}
 	r, _ := episode.RatioCI95(gain, gap)
 	return r
+}
+
+// The same on upkeep: robots that all leave from the depot site, deciding
+// in parallel.
+func TestUpkeepDepotLearnedGuesses(t *testing.T) {
+	m, err := upkeep.Default(3) // every robot starts at the depot
+	if err != nil {
+		t.Fatal(err)
+	}
+	eff := decide.Config{Samples: 6, Horizon: 10}
+	nTrain, nEval := 30, 120
+	if os.Getenv("BATON_HERDING_LONG") != "" {
+		nTrain, nEval = 60, 400
+	}
+	t0 := time.Now()
+	data, err := learn.Collect(m, eff, nTrain, trainSeed, nil)
+	if err != nil {
+		t.Fatal(err)
+	}
+	feat, _ := learn.FeaturizerFor(m)
+	net, _ := learn.Train(feat, data, trainConfig())
+	for it := 1; it <= upkeepDagger(); it++ {
+		more, err := learn.CollectOnPolicy(m, eff, net, nTrain, trainSeed+uint64(it), nil)
+		if err != nil {
+			t.Fatal(err)
+		}
+		if err := data.Append(more); err != nil {
+			t.Fatal(err)
+		}
+		net, _ = learn.Train(feat, data, trainConfig())
+	}
+	t.Logf("classifier: %d samples, %v", data.Len(), time.Since(t0).Round(time.Millisecond))
+	base, _ := signal.New("base", m, signal.Options{})
+	learned, _ := signal.New("learned", m, signal.Options{Classifier: net})
+	order := []int{0, 1, 2}
+	f := &fleet{m: m, d: decide.New(m, eff), order: order, none: []int{-1, -1, -1}, known: make([]int, 3), u: make([]int, 3)}
+	saved := effort
+	effort = eff // the fleet's guess context carries it
+	defer func() { effort = saved }()
+	var seq, par, parLearned []float64
+	for i := range nEval {
+		es := episode.Seed(evalSeed, i)
+		seq = append(seq, f.play(es, way{sequential: true}))
+		par = append(par, f.play(es, way{guess: base}))
+		parLearned = append(parLearned, f.play(es, way{guess: learned}))
+	}
+	for _, l := range []struct {
+		name string
+		xs   []float64
+	}{{"sequential", seq}, {"parallel, base guesses", par}, {"parallel, learned guesses", parLearned}} {
+		mean, half := episode.MeanCI95(l.xs)
+		t.Logf("%-26s %7.2f ± %5.2f", l.name, mean, half)
+	}
+	gain, gap := make([]float64, nEval), make([]float64, nEval)
+	for i := range gain {
+		gain[i], gap[i] = par[i]-parLearned[i], par[i]-seq[i]
+	}
+	gm, gh := episode.MeanCI95(gain)
+	r, rh := episode.RatioCI95(gain, gap)
+	t.Logf("retained %.3f ± %.3f (%d rounds of on-policy data)", r, rh, upkeepDagger())
+	if gm-gh <= 0 {
+		t.Errorf("learned guesses are not clearly better than base guesses in parallel: paired gain %.2f ± %.2f", gm, gh)
+	}
+	if r < 0.8 {
+		t.Errorf("learned guesses retain %.3f on upkeep, want >= 0.8", r)
+	}
+}
+
+func upkeepDagger() int {
+	if v := os.Getenv("BATON_UPKEEP_DAGGER"); v != "" {
+		n := 0
+		fmt.Sscan(v, &n)
+		return n
+	}
+	return 1
 }

@@ -106,7 +106,7 @@
 //
 // A model is a baton.v1.GuessModel (proto/model.proto) framed as
 //
-//	"BATONGM1" | uint32 big-endian length | GuessModel bytes | SHA-256 of those bytes
+//	"BATONGM2" | uint32 big-endian length | GuessModel bytes | SHA-256 of those bytes
 //
 // Load and Check refuse truncated files, bad magic, checksum mismatches,
 // models for another scenario or feature version, and layer shapes that do

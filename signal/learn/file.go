@@ -19,7 +19,11 @@ import (
 )
 
 // Magic starts every guess model file.
-const Magic = "BATONGM1"
+const Magic = "BATONGM2"
+
+// oldMagic marks format 1 files: nets whose features did not see the
+// predecessors' controls (guessing in order came with format 2).
+const oldMagic = "BATONGM1"
 
 const (
 	headerLen = len(Magic) + 4
@@ -138,6 +142,9 @@ func Unmarshal(data []byte) (*Net, Meta, error) {
 			return nil, Meta{}, refuse(ErrTruncated, "truncated: %d bytes, not even the %d-byte magic", len(data), len(Magic))
 		}
 		return nil, Meta{}, refuse(ErrMagic, "bad magic: not a guess model file (starts %q, want %q)", data, Magic)
+	}
+	if string(data[:len(Magic)]) == oldMagic {
+		return nil, Meta{}, refuse(ErrFeatureVersion, "a format 1 guess model, from before guesses were made in turn order: retrain it (sim train --scenario S --robots N --out FILE)")
 	}
 	if string(data[:len(Magic)]) != Magic {
 		return nil, Meta{}, refuse(ErrMagic, "bad magic: not a guess model file (starts %q, want %q)", data[:len(Magic)], Magic)

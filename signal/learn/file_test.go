@@ -221,3 +221,18 @@ func TestLoadRefusesHugeFile(t *testing.T) {
 		t.Errorf("refusing the file allocated %d bytes", n)
 	}
 }
+
+// A model file of format 1 (from before in-order features) is refused with
+// how to retrain.
+func TestFormatOneRefused(t *testing.T) {
+	fx := getFixture(t, "harbor")
+	b, err := fx.net.Marshal(1)
+	if err != nil {
+		t.Fatal(err)
+	}
+	copy(b, "BATONGM1")
+	_, _, err = Unmarshal(b)
+	if !errors.Is(err, ErrFeatureVersion) || !strings.Contains(err.Error(), "retrain it (sim train") {
+		t.Fatalf("%v", err)
+	}
+}
