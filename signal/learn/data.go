@@ -118,33 +118,41 @@ func Collect(m model.Model, p decide.Config, episodes int, seed uint64, base mod
 		fleet := episode.FleetSeed(es)
 		for step := 1; step <= m.Horizon() && !m.Terminal(x); step++ {
 			dec.OneAtATime(x, nil, fleet, step, u)
-			for k := range robots {
-				off := len(d.x)
-				d.x = slices.Grow(d.x, inputs)[:off+inputs]
-				// Robot k decided knowing robots 0..k-1's controls.
-				for j := range prior {
-					prior[j] = -1
-					if j < k {
-						prior[j] = u[j]
-					}
-				}
-				f.Features(x, k, k, prior, d.x[off:])
-				nc := m.NumControls(x, k)
-				for c := range classes {
-					d.valid = append(d.valid, c < nc)
-				}
-				if u[k] < 0 || u[k] >= nc {
-					return nil, fmt.Errorf("learn: rollout chose control %d of %d for robot %d", u[k], nc, k)
-				}
-				d.y = append(d.y, u[k])
-				d.episode = append(d.episode, ep)
-				d.pos = append(d.pos, k)
+			if err := d.record(m, f, x, u, prior, ep); err != nil {
+				return nil, err
 			}
 			rng.Reseed(episode.WorldSeed(es, step))
 			m.Step(x, u, rng.Rand)
 		}
 	}
 	return d, nil
+}
+
+// record adds one state's samples: robot k (position k, order 0..m-1)
+// chose u[k] knowing robots 0..k-1's controls. prior is scratch.
+func (d *Dataset) record(m model.Model, f Featurizer, x model.State, u, prior []int, ep int) error {
+	for k := range d.robots {
+		off := len(d.x)
+		d.x = slices.Grow(d.x, d.inputs)[:off+d.inputs]
+		for j := range prior {
+			prior[j] = -1
+			if j < k {
+				prior[j] = u[j]
+			}
+		}
+		f.Features(x, k, k, prior, d.x[off:])
+		nc := m.NumControls(x, k)
+		for c := range d.classes {
+			d.valid = append(d.valid, c < nc)
+		}
+		if u[k] < 0 || u[k] >= nc {
+			return fmt.Errorf("learn: rollout chose control %d of %d for robot %d", u[k], nc, k)
+		}
+		d.y = append(d.y, u[k])
+		d.episode = append(d.episode, ep)
+		d.pos = append(d.pos, k)
+	}
+	return nil
 }
 
 // Split holds out whole episodes: about testFrac of them (at least one of
@@ -223,23 +231,8 @@ func CollectOnPolicy(m model.Model, p decide.Config, net *Net, episodes int, see
 		fleet := episode.FleetSeed(es)
 		for step := 1; step <= m.Horizon() && !m.Terminal(x); step++ {
 			dec.OneAtATime(x, nil, fleet, step, teacher)
-			for k := range robots {
-				off := len(d.x)
-				d.x = slices.Grow(d.x, inputs)[:off+inputs]
-				for j := range prior {
-					prior[j] = -1
-					if j < k {
-						prior[j] = teacher[j]
-					}
-				}
-				f.Features(x, k, k, prior, d.x[off:])
-				nc := m.NumControls(x, k)
-				for c := range classes {
-					d.valid = append(d.valid, c < nc)
-				}
-				d.y = append(d.y, teacher[k])
-				d.episode = append(d.episode, ep)
-				d.pos = append(d.pos, k)
+			if err := d.record(m, f, x, teacher, prior, ep); err != nil {
+				return nil, err
 			}
 			// The fleet acts as a parallel one: robot k guesses robots
 			// 0..k-1 in order, then takes its rollout turn.
