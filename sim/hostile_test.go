@@ -7,6 +7,8 @@ import (
 	"fmt"
 	"io"
 	"os"
+	"os/exec"
+	"path/filepath"
 	"regexp"
 	"strconv"
 	"strings"
@@ -263,5 +265,37 @@ func waitNewRun(t *testing.T, f *fleetRun) {
 	t.Helper()
 	if err := f.waitNewRun(20 * time.Second); err != nil {
 		t.Fatal(err)
+	}
+}
+
+// A second daemon for a robot that is live is refused at its start, and
+// both daemons' logs name the other process; the fleet goes on.
+func TestSecondDaemonForALiveRobot(t *testing.T) {
+	f := testFleet(t, opts("harbor", 3, 200, 4, nil))
+	if res := f.play(1); res.Held != 0 {
+		t.Fatalf("round 1: %d held", res.Held)
+	}
+	args := append([]string{"agentd", "--nats", f.robotURL}, f.common...)
+	args = append(args, "--robot", "1", "--http", "127.0.0.1:0", "--join", f.gossip)
+	cmd := exec.Command(simBin, args...)
+	out, err := cmd.CombinedOutput()
+	ee, ok := err.(*exec.ExitError)
+	if !ok || ee.ExitCode() != 1 || !strings.Contains(string(out), "robot-1 is already live: gossip member") ||
+		!strings.Contains(string(out), "refusing to run a second daemon") {
+		t.Fatalf("second daemon for robot 1: %v\n%s", err, out)
+	}
+	deadline := time.Now().Add(5 * time.Second)
+	for {
+		b, _ := os.ReadFile(filepath.Join(f.o.logDir, "agentd-1.log"))
+		if strings.Contains(string(b), "another daemon claims this robot") {
+			break
+		}
+		if time.Now().After(deadline) {
+			t.Fatalf("robot 1's daemon did not log the second claim:\n%s", b)
+		}
+		time.Sleep(50 * time.Millisecond)
+	}
+	if res := f.play(2); res.Held != 0 {
+		t.Fatalf("round 2 after the refused daemon: %d held", res.Held)
 	}
 }

@@ -17,6 +17,7 @@ import (
 	"syscall"
 	"time"
 
+	"github.com/hashicorp/memberlist"
 	"github.com/prometheus/client_golang/prometheus"
 	"github.com/prometheus/client_golang/prometheus/collectors"
 	"go.uber.org/zap"
@@ -115,7 +116,9 @@ func MainWith(args []string, hooks shell.Hooks) int {
 	} else {
 		lg.Warn("no --join: this robot is in no fleet's gossip, so no coordinator will schedule it")
 	}
-	ml, err := shell.Gossip(shell.Incarnation(shell.RobotMember(c.Fleet, *robot)), *gossip, joinList, lg)
+	self := shell.Incarnation(shell.RobotMember(c.Fleet, *robot))
+	ml, err := shell.Gossip(self, *gossip, joinList, lg,
+		func(mc *memberlist.Config) { mc.Events = shell.ClaimWatch{Self: self, Log: lg} })
 	if err != nil {
 		return fail(err)
 	}
@@ -123,6 +126,11 @@ func MainWith(args []string, hooks shell.Hooks) int {
 		_ = ml.Leave(time.Second)
 		_ = ml.Shutdown()
 	}()
+	// One daemon per robot: a second one would publish a second decision
+	// for it every round (and peers would drop both as conflicting).
+	if other := shell.LiveClaim(ml, 3); other != nil {
+		return fail(shell.ClaimError(shell.RobotMember(c.Fleet, *robot), other))
+	}
 	bucket := shell.ModelBucket(c.Prefix, c.Fleet)
 	cfg.FetchModel = func(ctx context.Context, v uint64) ([]byte, error) { return shell.FetchModel(ctx, nc, bucket, v) }
 	var bus shell.Bus = shell.NATSBus{Conn: nc}
