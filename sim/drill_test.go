@@ -182,3 +182,18 @@ func TestWriteReport(t *testing.T) {
 		t.Fatalf("left behind: %v", entries)
 	}
 }
+
+// The robot's local interface stays on localhost unless it has a token.
+func TestLocalInterfaceNeedsATokenBeyondLocalhost(t *testing.T) {
+	out, err := exec.Command(simBin, "agentd", "--robot", "0", "--nats", "nats://127.0.0.1:1", "--http", "0.0.0.0:0").CombinedOutput()
+	ee, ok := err.(*exec.ExitError)
+	if !ok || ee.ExitCode() != 2 || !strings.Contains(string(out), "--http 0.0.0.0:0 is reachable from other hosts: give --http-token-file") {
+		t.Fatalf("%v\n%s", err, out)
+	}
+	tok := filepath.Join(t.TempDir(), "token")
+	os.WriteFile(tok, []byte("short\n"), 0o600)
+	out, err = exec.Command(simBin, "agentd", "--robot", "0", "--nats", "nats://127.0.0.1:1", "--http", "0.0.0.0:0", "--http-token-file", tok).CombinedOutput()
+	if ee, ok := err.(*exec.ExitError); !ok || ee.ExitCode() != 2 || !strings.Contains(string(out), "at least 16 characters") {
+		t.Fatalf("%v\n%s", err, out)
+	}
+}

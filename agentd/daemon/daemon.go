@@ -53,6 +53,7 @@ func MainWith(args []string, hooks shell.Hooks) int {
 	cfg.RegisterFlags(fs)
 	robot := fs.Int("robot", -1, "this robot's id, 0..robots-1 (required)")
 	httpAddr := fs.String("http", "127.0.0.1:7400", "local interface for the robot's software (localhost only by default)")
+	tokenFile := fs.String("http-token-file", "", "file with a token (16+ characters) the local interface requires as 'Authorization: Bearer <token>'; needed when --http is not a loopback address")
 	gossip := fs.String("gossip", "127.0.0.1:0", "gossip bind host:port (port 0 picks one)")
 	join := fs.String("join", "", "gossip address(es) of the coordinator or any member, comma-separated")
 	guessModel := fs.String("guess-model", "", "trained guess model file (signal/learn) for learned guesses; without one they are base guesses until the fleet distributes one")
@@ -70,6 +71,17 @@ func MainWith(args []string, hooks shell.Hooks) int {
 	}
 	if *robot < 0 {
 		fmt.Fprintln(os.Stderr, "agentd: --robot N is required (this robot's id, 0..robots-1)")
+		return 2
+	}
+	var token string
+	if *tokenFile != "" {
+		var err error
+		if token, err = node.ReadToken(*tokenFile); err != nil {
+			fmt.Fprintln(os.Stderr, "agentd:", err)
+			return 2
+		}
+	} else if !node.Loopback(*httpAddr) {
+		fmt.Fprintf(os.Stderr, "agentd: --http %s is reachable from other hosts: give --http-token-file (requests then need 'Authorization: Bearer <token>'), or bind 127.0.0.1\n", *httpAddr)
 		return 2
 	}
 	lg, fail, err := c.Start(fmt.Sprintf("agentd-%d", *robot))
@@ -146,7 +158,11 @@ func MainWith(args []string, hooks shell.Hooks) int {
 	ctx, stop := signal.NotifyContext(context.Background(), os.Interrupt, syscall.SIGTERM)
 	defer stop()
 	go shell.KeepJoined(ctx, ml, joinList, c.Fleet+"/coordinator", lg)
-	srv := &http.Server{Handler: n.Handler(reg), ReadHeaderTimeout: 5 * time.Second}
+	handler := n.Handler(reg)
+	if token != "" {
+		handler = node.RequireToken(handler, token)
+	}
+	srv := &http.Server{Handler: handler, ReadHeaderTimeout: 5 * time.Second}
 	go func() {
 		if err := srv.Serve(ln); err != nil && !errors.Is(err, http.ErrServerClosed) {
 			lg.Error("local interface stopped", zap.Error(err))

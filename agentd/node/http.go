@@ -2,11 +2,14 @@ package node
 
 import (
 	"bytes"
+	"crypto/subtle"
 	"encoding/json"
 	"errors"
 	"fmt"
 	"io"
+	"net"
 	"net/http"
+	"os"
 	"strconv"
 	"strings"
 	"time"
@@ -127,4 +130,54 @@ func ParseReport(body []byte) (Report, error) {
 		return Report{}, fmt.Errorf("observation with %d sightings, over %d", len(rep.Seen), turn.MaxSightings)
 	}
 	return rep, nil
+}
+
+// RequireToken guards the local interface when it is reachable from other
+// hosts: every request but /healthz (for probes) must carry
+// "Authorization: Bearer <token>".
+func RequireToken(h http.Handler, token string) http.Handler {
+	want := []byte("Bearer " + token)
+	return http.HandlerFunc(func(w http.ResponseWriter, r *http.Request) {
+		if r.URL.Path != "/healthz" && subtle.ConstantTimeCompare([]byte(r.Header.Get("Authorization")), want) != 1 {
+			w.Header().Set("WWW-Authenticate", `Bearer realm="agentd"`)
+			httpError(w, http.StatusUnauthorized, "this interface needs Authorization: Bearer <token> (agentd --http-token-file)")
+			return
+		}
+		h.ServeHTTP(w, r)
+	})
+}
+
+// Loopback reports whether a listen address is reachable from this host
+// only.
+func Loopback(addr string) bool {
+	host, _, err := net.SplitHostPort(addr)
+	if err != nil {
+		return false
+	}
+	if host == "localhost" {
+		return true
+	}
+	ip := net.ParseIP(host)
+	return ip != nil && ip.IsLoopback()
+}
+
+// ReadToken reads a token file: one line of at least 16 bytes.
+func ReadToken(path string) (string, error) {
+	f, err := os.Open(path)
+	if err != nil {
+		return "", fmt.Errorf("--http-token-file: %w", err)
+	}
+	defer f.Close()
+	b, err := io.ReadAll(io.LimitReader(f, 4097))
+	if err != nil {
+		return "", fmt.Errorf("--http-token-file %s: %w", path, err)
+	}
+	tok := strings.TrimSpace(string(b))
+	switch {
+	case len(b) > 4096:
+		return "", fmt.Errorf("--http-token-file %s: more than 4096 bytes", path)
+	case len(tok) < 16 || strings.ContainsAny(tok, " \t\r\n"):
+		return "", fmt.Errorf("--http-token-file %s: want one token of at least 16 characters, no spaces", path)
+	}
+	return tok, nil
 }

@@ -6,6 +6,8 @@ import (
 	"io"
 	"net/http"
 	"net/http/httptest"
+	"os"
+	"path/filepath"
 	"slices"
 	"strings"
 	"testing"
@@ -550,5 +552,41 @@ func TestReportResent(t *testing.T) {
 	waitFor(t, func() bool { return testutil.ToFloat64(r.met.Dropped.WithLabelValues("too-frequent")) == 2 })
 	if len(got) != 0 {
 		t.Fatal("re-sent more than once within the gap")
+	}
+}
+
+// Bound beyond localhost, the local interface wants its token on every
+// request but health probes.
+func TestRequireToken(t *testing.T) {
+	h := RequireToken(http.HandlerFunc(func(w http.ResponseWriter, _ *http.Request) { io.WriteString(w, "ok") }), "0123456789abcdef")
+	for _, c := range []struct {
+		path, auth string
+		code       int
+	}{
+		{"/v1/decision", "", 401}, {"/v1/decision", "Bearer wrong-token-000000", 401},
+		{"/v1/decision", "Bearer 0123456789abcdef", 200}, {"/metrics", "", 401}, {"/healthz", "", 200},
+	} {
+		rec := httptest.NewRecorder()
+		req := httptest.NewRequest("GET", c.path, nil)
+		if c.auth != "" {
+			req.Header.Set("Authorization", c.auth)
+		}
+		h.ServeHTTP(rec, req)
+		if rec.Code != c.code {
+			t.Errorf("%s with %q: %d, want %d", c.path, c.auth, rec.Code, c.code)
+		}
+	}
+	for addr, want := range map[string]bool{"127.0.0.1:7400": true, "localhost:1": true, "[::1]:2": true, "0.0.0.0:7400": false, ":7400": false, "10.0.0.5:7400": false} {
+		if Loopback(addr) != want {
+			t.Errorf("Loopback(%q) = %v", addr, !want)
+		}
+	}
+	dir := t.TempDir()
+	for content, ok := range map[string]bool{"0123456789abcdef\n": true, "short": false, "two words here!!!!": false} {
+		p := filepath.Join(dir, "tok")
+		os.WriteFile(p, []byte(content), 0o600)
+		if _, err := ReadToken(p); (err == nil) != ok {
+			t.Errorf("token %q: %v", content, err)
+		}
 	}
 }
