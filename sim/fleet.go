@@ -17,6 +17,7 @@ import (
 	"path/filepath"
 	"strconv"
 	"strings"
+	"sync"
 	"syscall"
 	"time"
 
@@ -345,8 +346,22 @@ func (f *fleetRun) report(round int) {
 func (f *fleetRun) play(round int) fleetsum.Round {
 	res := fleetsum.Round{Round: round, Decided: make([]int, len(f.bases))}
 	t0 := time.Now()
+	// Each robot's software waits on its own: one that waits long (its
+	// daemon just restarted, say) must not make the others read their
+	// decisions after their round is over.
+	views := make([]node.View, len(f.bases))
+	errs := make([]error, len(f.bases))
+	var wg sync.WaitGroup
 	for r, b := range f.bases {
-		v, err := getDecision(f.client, b, round, f.wait)
+		wg.Add(1)
+		go func() {
+			defer wg.Done()
+			views[r], errs[r] = getDecision(f.client, b, round, f.wait)
+		}()
+	}
+	wg.Wait()
+	for r := range f.bases {
+		v, err := views[r], errs[r]
 		if err == nil {
 			// The round's latency, whoever held: a round everyone held
 			// for still took its time.
