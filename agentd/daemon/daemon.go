@@ -129,8 +129,12 @@ func MainWith(args []string, hooks shell.Hooks) int {
 		lg.Warn("no --join: this robot is in no fleet's gossip, so no coordinator will schedule it")
 	}
 	self := shell.Incarnation(shell.RobotMember(c.Fleet, *robot))
-	ml, err := shell.Gossip(self, *gossip, joinList, lg,
-		func(mc *memberlist.Config) { mc.Events = shell.ClaimWatch{Self: self, Log: lg} })
+	gopts, err := c.GossipOptions()
+	if err != nil {
+		return fail(err)
+	}
+	gopts = append(gopts, func(mc *memberlist.Config) { mc.Events = shell.ClaimWatch{Self: self, Log: lg} })
+	ml, err := shell.Gossip(self, *gossip, joinList, lg, gopts...)
 	if err != nil {
 		return fail(err)
 	}

@@ -115,7 +115,11 @@ func MainWith(args []string, hooks shell.Hooks) int {
 		return fail(err)
 	}
 	defer nc.Close()
-	ml, err := shell.Gossip(shell.Incarnation(c.Fleet+"/coordinator"), *gossip, nil, lg)
+	gopts, err := c.GossipOptions()
+	if err != nil {
+		return fail(err)
+	}
+	ml, err := shell.Gossip(shell.Incarnation(c.Fleet+"/coordinator"), *gossip, nil, lg, gopts...)
 	if err != nil {
 		return fail(err)
 	}

@@ -1,8 +1,11 @@
 package shell
 
 import (
+	"encoding/base64"
 	"fmt"
 	"net"
+	"os"
+	"strings"
 
 	"github.com/hashicorp/memberlist"
 	"go.uber.org/zap"
@@ -52,3 +55,30 @@ func (w ClaimWatch) NotifyJoin(n *memberlist.Node) {
 }
 func (ClaimWatch) NotifyLeave(*memberlist.Node)  {}
 func (ClaimWatch) NotifyUpdate(*memberlist.Node) {}
+
+// ReadGossipKey reads a gossip encryption key file: the base64 of 16, 24
+// or 32 random bytes (AES-128, -192 or -256; e.g. `head -c 32 /dev/urandom
+// | base64`). Every member of a fleet must use the same key; a member
+// without it cannot join.
+func ReadGossipKey(path string) ([]byte, error) {
+	data, err := os.ReadFile(path)
+	if err != nil {
+		return nil, fmt.Errorf("--gossip-key-file: %w", err)
+	}
+	if len(data) > 1024 {
+		return nil, fmt.Errorf("--gossip-key-file %s: more than 1024 bytes; want the base64 of 16, 24 or 32 bytes", path)
+	}
+	key, err := base64.StdEncoding.DecodeString(strings.TrimSpace(string(data)))
+	if err != nil {
+		return nil, fmt.Errorf("--gossip-key-file %s: not base64: %w", path, err)
+	}
+	if n := len(key); n != 16 && n != 24 && n != 32 {
+		return nil, fmt.Errorf("--gossip-key-file %s: a %d-byte key; want 16, 24 or 32 bytes (e.g. head -c 32 /dev/urandom | base64)", path, n)
+	}
+	return key, nil
+}
+
+// WithGossipKey is a Gossip option that encrypts gossip with key.
+func WithGossipKey(key []byte) func(*memberlist.Config) {
+	return func(c *memberlist.Config) { c.SecretKey = key }
+}

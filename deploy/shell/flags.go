@@ -8,6 +8,7 @@ import (
 	"strings"
 	"time"
 
+	"github.com/hashicorp/memberlist"
 	"go.uber.org/zap"
 
 	pb "baton/proto"
@@ -19,6 +20,7 @@ import (
 // spell and document them the same way.
 type Common struct {
 	NATS, Creds, Fleet, Prefix string
+	GossipKeyFile              string
 	Scenario, Config           string
 	Robots                     int
 	ConnectTimeout             time.Duration
@@ -30,6 +32,7 @@ type Common struct {
 func (c *Common) Register(fs *flag.FlagSet, configHelp string) {
 	fs.StringVar(&c.NATS, "nats", "nats://127.0.0.1:4222", "NATS server URL list, comma-separated")
 	fs.StringVar(&c.Creds, "creds", "", "NATS credentials file")
+	fs.StringVar(&c.GossipKeyFile, "gossip-key-file", "", "encrypt gossip with this key (base64 of 16, 24 or 32 bytes; the same for the whole fleet)")
 	fs.StringVar(&c.Fleet, "fleet", "demo", "fleet id")
 	fs.StringVar(&c.Prefix, "prefix", "baton", "NATS subject prefix")
 	fs.StringVar(&c.Scenario, "scenario", "harbor", "scenario: "+strings.Join(scenarios.Names(), " or "))
@@ -107,4 +110,17 @@ func (c *Common) Start(name string) (*zap.Logger, func(error) int, error) {
 		return 1
 	}
 	return lg, fail, nil
+}
+
+// GossipOptions are the Gossip options the shared flags ask for (the
+// encryption key).
+func (c *Common) GossipOptions() ([]func(*memberlist.Config), error) {
+	if c.GossipKeyFile == "" {
+		return nil, nil
+	}
+	key, err := ReadGossipKey(c.GossipKeyFile)
+	if err != nil {
+		return nil, err
+	}
+	return []func(*memberlist.Config){WithGossipKey(key)}, nil
 }

@@ -1,8 +1,14 @@
 package shell
 
 import (
+	"bytes"
+	"encoding/base64"
 	"io"
 	"log"
+	"os"
+	"path/filepath"
+	"slices"
+	"strings"
 	"sync/atomic"
 	"testing"
 	"time"
@@ -99,4 +105,70 @@ func TestIncarnations(t *testing.T) {
 	if a == b || MemberOf(a) != "f/robot-3" || MemberOf("f/coordinator") != "f/coordinator" {
 		t.Fatalf("%q %q", a, b)
 	}
+}
+
+// Encrypted gossip: members with the fleet's key join; one without it, or
+// with another key, cannot.
+func TestGossipKey(t *testing.T) {
+	t.Parallel()
+	dir := t.TempDir()
+	write := func(name, content string) string {
+		p := filepath.Join(dir, name)
+		if err := os.WriteFile(p, []byte(content), 0o600); err != nil {
+			t.Fatal(err)
+		}
+		return p
+	}
+	key, err := ReadGossipKey(write("k", base64.StdEncoding.EncodeToString(bytes.Repeat([]byte{7}, 32))+"\n"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	other, _ := ReadGossipKey(write("o", base64.StdEncoding.EncodeToString(bytes.Repeat([]byte{9}, 16))))
+	for content, want := range map[string]string{"not base64!": "not base64", base64.StdEncoding.EncodeToString([]byte("short")): "a 5-byte key"} {
+		if _, err := ReadGossipKey(write("bad", content)); err == nil || !strings.Contains(err.Error(), want) {
+			t.Errorf("%q: %v", content, err)
+		}
+	}
+	lg := zap.NewNop()
+	coord, err := Gossip("f/coordinator", "127.0.0.1:0", nil, lg, WithGossipKey(key))
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer coord.Shutdown()
+	join := []string{coord.LocalNode().Address()}
+	ok, err := Gossip(RobotMember("f", 0), "127.0.0.1:0", join, lg, WithGossipKey(key))
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer ok.Shutdown()
+	for _, opts := range [][]func(*memberlist.Config){nil, {WithGossipKey(other)}} {
+		bad, err := memberlist.Create(mustConfig(t, RobotMember("f", 1), opts...))
+		if err != nil {
+			t.Fatal(err)
+		}
+		if _, err := bad.Join(join); err == nil {
+			t.Error("a member without the fleet's key joined")
+		}
+		bad.Shutdown()
+	}
+	deadline := time.Now().Add(5 * time.Second)
+	for !slices.Equal(AliveRobots(coord, "f"), []int{0}) {
+		if time.Now().After(deadline) {
+			t.Fatalf("coordinator sees robots %v, want [0]", AliveRobots(coord, "f"))
+		}
+		time.Sleep(20 * time.Millisecond)
+	}
+}
+
+func mustConfig(t *testing.T, name string, opts ...func(*memberlist.Config)) *memberlist.Config {
+	t.Helper()
+	c, err := GossipConfig(name, "127.0.0.1:0")
+	if err != nil {
+		t.Fatal(err)
+	}
+	c.TCPTimeout = 500 * time.Millisecond
+	for _, o := range opts {
+		o(c)
+	}
+	return c
 }
