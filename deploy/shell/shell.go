@@ -76,10 +76,20 @@ func Connect(urls, creds, name string, timeout time.Duration, lg *zap.Logger, ex
 	}
 	opts = append(opts, extra...)
 	if creds != "" {
-		if _, err := os.Stat(creds); err != nil {
+		data, err := os.ReadFile(creds)
+		if err != nil {
 			return nil, fmt.Errorf("--creds: %w", err)
 		}
-		opts = append(opts, nats.UserCredentials(creds))
+		// An nkey seed file (from sim creds), or a JWT credentials file.
+		if seed := strings.TrimSpace(string(data)); strings.HasPrefix(seed, "SU") && !strings.ContainsAny(seed, " \n") {
+			o, err := nats.NkeyOptionFromSeed(creds)
+			if err != nil {
+				return nil, fmt.Errorf("--creds %s: %w", creds, err)
+			}
+			opts = append(opts, o)
+		} else {
+			opts = append(opts, nats.UserCredentials(creds))
+		}
 	}
 	deadline := time.Now().Add(timeout)
 	for attempt := 1; ; attempt++ {
