@@ -1,0 +1,84 @@
+package main
+
+import (
+	"os"
+	"os/exec"
+	"path/filepath"
+	"regexp"
+	"strings"
+	"testing"
+
+	"github.com/nats-io/nats-server/v2/server"
+
+	"baton/deploy/shell"
+)
+
+// The shipped NATS cluster configurations load (with the authorization
+// block sim creds writes) and route to the other two nodes.
+func TestDeployNATSConfigs(t *testing.T) {
+	files, _ := filepath.Glob("../deploy/nats/node-*.conf")
+	if len(files) != 3 {
+		t.Fatalf("want 3 cluster node configurations, found %v", files)
+	}
+	ids, err := shell.FleetIdentities("baton", "yard", 2)
+	if err != nil {
+		t.Fatal(err)
+	}
+	for _, f := range files {
+		dir := t.TempDir()
+		if err := shell.WriteFleetCredentials(dir, ids); err != nil {
+			t.Fatal(err)
+		}
+		data, err := os.ReadFile(f)
+		if err != nil {
+			t.Fatal(err)
+		}
+		conf := strings.Replace(string(data), "/var/lib/nats", filepath.ToSlash(filepath.Join(dir, "js")), 1)
+		path := filepath.Join(dir, filepath.Base(f))
+		os.WriteFile(path, []byte(conf), 0o600)
+		opts, err := server.ProcessConfigFile(path)
+		if err != nil {
+			t.Fatalf("%s: %v", f, err)
+		}
+		if len(opts.Routes) != 2 || !opts.JetStream || len(opts.Nkeys) != 3 || opts.Cluster.Name != "baton" {
+			t.Fatalf("%s: %d routes, jetstream %v, %d users, cluster %q", f, len(opts.Routes), opts.JetStream, len(opts.Nkeys), opts.Cluster.Name)
+		}
+	}
+}
+
+// The systemd units pass only flags the daemons have.
+func TestDeployUnitsUseRealFlags(t *testing.T) {
+	flagsOf := func(cmd string) map[string]bool {
+		out, _ := exec.Command(simBin, cmd, "-h").CombinedOutput()
+		have := map[string]bool{}
+		for _, m := range regexp.MustCompile(`(?m)^  -([a-z-]+)`).FindAllStringSubmatch(string(out), -1) {
+			have[m[1]] = true
+		}
+		if len(have) < 10 {
+			t.Fatalf("%s -h listed %d flags:\n%s", cmd, len(have), out)
+		}
+		return have
+	}
+	for unit, cmd := range map[string]string{"baton-agentd@.service": "agentd", "baton-coordinator.service": "coordinator"} {
+		data, err := os.ReadFile(filepath.Join("../deploy/systemd", unit))
+		if err != nil {
+			t.Fatal(err)
+		}
+		have := flagsOf(cmd)
+		exec := strings.ReplaceAll(string(data), "\\\n", " ")
+		line := regexp.MustCompile(`(?m)^ExecStart=(.*)$`).FindStringSubmatch(exec)
+		if line == nil || !strings.Contains(line[1], "/"+cmd+" ") {
+			t.Fatalf("%s: no ExecStart running %s", unit, cmd)
+		}
+		for _, m := range regexp.MustCompile(`--([a-z-]+)`).FindAllStringSubmatch(line[1], -1) {
+			if !have[m[1]] {
+				t.Errorf("%s passes --%s, which %s does not have", unit, m[1], cmd)
+			}
+		}
+		for _, want := range []string{"Restart=on-failure", "NoNewPrivileges=yes", "ProtectSystem=strict", "DynamicUser=yes"} {
+			if !strings.Contains(string(data), want) {
+				t.Errorf("%s lacks %s", unit, want)
+			}
+		}
+	}
+}
