@@ -1,12 +1,14 @@
 package main
 
 import (
+	"context"
 	"os"
 	"os/exec"
 	"path/filepath"
 	"regexp"
 	"strings"
 	"testing"
+	"time"
 
 	"github.com/nats-io/nats-server/v2/server"
 
@@ -80,5 +82,29 @@ func TestDeployUnitsUseRealFlags(t *testing.T) {
 				t.Errorf("%s lacks %s", unit, want)
 			}
 		}
+	}
+}
+
+// A short soak: a process fleet under 10% loss for 200 rounds leaks no
+// goroutines, heap or descriptors (generous bounds; `sim soak` runs the
+// long one).
+func TestShortSoak(t *testing.T) {
+	o := fleetOpts{sc: scenarioFlags{name: "harbor", robots: 3}, clock: defaultSoakClock(), seed: 2, fleet: "soak",
+		prefix: "baton", exe: simBin, logDir: t.TempDir()}
+	ctx, cancel := context.WithTimeout(context.Background(), 3*time.Minute)
+	defer cancel()
+	s, err := soak(ctx, o, 200, 50, nil)
+	if err != nil {
+		t.Fatal(err)
+	}
+	first, last := s[0], s[len(s)-1]
+	t.Logf("first %+v", first)
+	t.Logf("last  %+v", last)
+	if last.Goroutines > first.Goroutines+10 || last.FDs > first.FDs+10 || last.HeapMB > 64 || last.Held > 20 {
+		t.Fatalf("after %d rounds: goroutines %v -> %v, fds %v -> %v, heap %.1f MB, %d held", last.Round,
+			first.Goroutines, last.Goroutines, first.FDs, last.FDs, last.HeapMB, last.Held)
+	}
+	if last.LogKB <= first.LogKB {
+		t.Fatal("the decision log did not grow")
 	}
 }

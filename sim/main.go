@@ -23,6 +23,7 @@ commands:
   exact     exact costs of optimal, base and both rollouts on a tiny instance
   fleet     a whole fleet on this machine: embedded NATS, coordinator, one agentd per robot
   bench     bench rounds: hop and round latency against the physics
+  soak      a process fleet for many rounds under loss: goroutines, heap, fds, log size
   creds     a fleet's NATS identities (nkeys) and the server's permissions
   drill     run a drill file: fleets through scheduled faults, and what each costs
   train     learn a stand-in for rollout (the learned guess source); --iterations K
@@ -63,6 +64,8 @@ func run(args []string) int {
 		err = cmdDrill(args[1:])
 	case "creds":
 		err = cmdCreds(args[1:])
+	case "soak":
+		err = cmdSoak(args[1:])
 	case "-h", "-help", "--help", "help":
 		fmt.Print(usage)
 		return 0
