@@ -116,8 +116,12 @@ func MainWith(args []string, hooks shell.Hooks) int {
 	reg := prometheus.NewRegistry()
 	reg.MustRegister(collectors.NewGoCollector(), collectors.NewProcessCollector(collectors.ProcessCollectorOpts{}))
 	cfg.Log, cfg.Metrics = lg, node.NewMetrics(reg)
+	tlsOpts, err := c.TLSOptions()
+	if err != nil {
+		return fail(err)
+	}
 	nc, err := shell.Connect(c.NATS, c.Creds, cfg.Sender, c.ConnectTimeout, lg,
-		shell.ClientErrors(lg, func(kind string) { cfg.Metrics.NATSErrors.WithLabelValues(kind).Inc() }))
+		append(tlsOpts, shell.ClientErrors(lg, func(kind string) { cfg.Metrics.NATSErrors.WithLabelValues(kind).Inc() }))...)
 	if err != nil {
 		return fail(err)
 	}

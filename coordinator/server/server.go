@@ -109,8 +109,12 @@ func MainWith(args []string, hooks shell.Hooks) int {
 	reg := prometheus.NewRegistry()
 	reg.MustRegister(collectors.NewGoCollector(), collectors.NewProcessCollector(collectors.ProcessCollectorOpts{}))
 	met := hub.NewMetrics(reg)
+	tlsOpts, err := c.TLSOptions()
+	if err != nil {
+		return fail(err)
+	}
 	nc, err := shell.Connect(url, c.Creds, "coordinator-"+c.Fleet, c.ConnectTimeout, lg,
-		shell.ClientErrors(lg, func(kind string) { met.NATSErrors.WithLabelValues(kind).Inc() }))
+		append(tlsOpts, shell.ClientErrors(lg, func(kind string) { met.NATSErrors.WithLabelValues(kind).Inc() }))...)
 	if err != nil {
 		return fail(err)
 	}

@@ -9,6 +9,7 @@ import (
 	"time"
 
 	"github.com/hashicorp/memberlist"
+	"github.com/nats-io/nats.go"
 	"go.uber.org/zap"
 
 	pb "baton/proto"
@@ -21,6 +22,7 @@ import (
 type Common struct {
 	NATS, Creds, Fleet, Prefix string
 	GossipKeyFile              string
+	TLSCA, TLSCert, TLSKey     string
 	Scenario, Config           string
 	Robots                     int
 	ConnectTimeout             time.Duration
@@ -32,6 +34,9 @@ type Common struct {
 func (c *Common) Register(fs *flag.FlagSet, configHelp string) {
 	fs.StringVar(&c.NATS, "nats", "nats://127.0.0.1:4222", "NATS server URL list, comma-separated")
 	fs.StringVar(&c.Creds, "creds", "", "NATS credentials file")
+	fs.StringVar(&c.TLSCA, "tls-ca", "", "CA certificate (PEM) to verify the NATS servers with; turns TLS on")
+	fs.StringVar(&c.TLSCert, "tls-cert", "", "client certificate (PEM) for NATS servers that verify clients (with --tls-key)")
+	fs.StringVar(&c.TLSKey, "tls-key", "", "client certificate's key (PEM)")
 	fs.StringVar(&c.GossipKeyFile, "gossip-key-file", "", "encrypt gossip with this key (base64 of 16, 24 or 32 bytes; the same for the whole fleet)")
 	fs.StringVar(&c.Fleet, "fleet", "demo", "fleet id")
 	fs.StringVar(&c.Prefix, "prefix", "baton", "NATS subject prefix")
@@ -123,4 +128,27 @@ func (c *Common) GossipOptions() ([]func(*memberlist.Config), error) {
 		return nil, err
 	}
 	return []func(*memberlist.Config){WithGossipKey(key)}, nil
+}
+
+// TLSOptions are the NATS options the TLS flags ask for.
+func (c *Common) TLSOptions() ([]nats.Option, error) {
+	var opts []nats.Option
+	for _, f := range []struct{ flag, path string }{{"--tls-ca", c.TLSCA}, {"--tls-cert", c.TLSCert}, {"--tls-key", c.TLSKey}} {
+		if f.path == "" {
+			continue
+		}
+		if _, err := os.Stat(f.path); err != nil {
+			return nil, fmt.Errorf("%s: %w", f.flag, err)
+		}
+	}
+	if (c.TLSCert == "") != (c.TLSKey == "") {
+		return nil, errors.New("--tls-cert and --tls-key go together")
+	}
+	if c.TLSCA != "" {
+		opts = append(opts, nats.RootCAs(c.TLSCA))
+	}
+	if c.TLSCert != "" {
+		opts = append(opts, nats.ClientCert(c.TLSCert, c.TLSKey))
+	}
+	return opts, nil
 }
