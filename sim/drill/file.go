@@ -423,10 +423,10 @@ func window(r []int, rounds int) (from, until int, err error) {
 func (fy faultYAML) spec(doc *config.Doc, path string, robots, rounds int) (fault.Spec, error) {
 	s := fault.Spec{Kind: fault.Kind(fy.Kind), Robots: fy.Robots}
 	if fy.Kind == "" {
-		return s, doc.Errorf(path+".kind", "missing: want one of %s", kindNames())
+		return s, doc.Errorf(path+".kind", "missing: want one of %s", fault.KindList())
 	}
 	if !slices.Contains(fault.Kinds, s.Kind) {
-		return s, doc.Errorf(path+".kind", "unknown fault %q: want one of %s", fy.Kind, kindNames())
+		return s, doc.Errorf(path+".kind", "unknown fault %q: want one of %s", fy.Kind, fault.KindList())
 	}
 	if len(fy.Rounds) > 0 {
 		var err error
@@ -505,7 +505,7 @@ func (fy faultYAML) spec(doc *config.Doc, path string, robots, rounds int) (faul
 	}
 	for i, l := range s.Links {
 		if l[0] == l[1] {
-			return s, doc.Errorf(fmt.Sprintf("%s.links[%d]", path, i), "a link from %s to itself carries nothing", endpointName(l[0]))
+			return s, doc.Errorf(fmt.Sprintf("%s.links[%d]", path, i), "a link from %s to itself carries nothing", fault.EndpointName(l[0]))
 		}
 	}
 	if err := prob("p", fy.P, &s.P); err != nil {
@@ -571,14 +571,6 @@ func (fy faultYAML) spec(doc *config.Doc, path string, robots, rounds int) (faul
 	return s, nil
 }
 
-func kindNames() string {
-	var s []string
-	for _, k := range fault.Kinds {
-		s = append(s, string(k))
-	}
-	return strings.Join(s, ", ")
-}
-
 // endpoint reads a robot id or "coordinator".
 func endpoint(s string, robots int) (int, error) {
 	if s == "coordinator" {
@@ -595,10 +587,3 @@ func endpoint(s string, robots int) (int, error) {
 }
 
 var errNoRunner = errors.New("this drill kills processes or connections: it needs real processes (sim drill runs them)")
-
-func endpointName(e int) string {
-	if e == fault.Coordinator {
-		return "the coordinator"
-	}
-	return fmt.Sprintf("robot %d", e)
-}

@@ -171,7 +171,7 @@ func (s Spec) Describe() string {
 // (0: unknown); the error names the field.
 func (s Spec) Check(robots, rounds int) error {
 	if !slices.Contains(Kinds, s.Kind) {
-		return fmt.Errorf("unknown fault %q (known: %s)", s.Kind, kindList())
+		return fmt.Errorf("unknown fault %q (known: %s)", s.Kind, KindList())
 	}
 	prob := func(name string, p float64) error {
 		if !(p >= 0 && p <= 1) {
@@ -229,7 +229,7 @@ func (s Spec) Check(robots, rounds int) error {
 					return fmt.Errorf("groups: %d is neither the coordinator nor a robot 0..%d", e, robots-1)
 				}
 				if seen[e] {
-					return fmt.Errorf("groups: %s is in two groups", endpointName(e))
+					return fmt.Errorf("groups: %s is in two groups", EndpointName(e))
 				}
 				seen[e] = true
 			}
@@ -265,7 +265,8 @@ func (s Spec) Check(robots, rounds int) error {
 	return nil
 }
 
-func kindList() string {
+// KindList is every kind, comma-separated, for messages.
+func KindList() string {
 	var s []string
 	for _, k := range Kinds {
 		s = append(s, string(k))
@@ -273,7 +274,8 @@ func kindList() string {
 	return strings.Join(s, ", ")
 }
 
-func endpointName(e int) string {
+// EndpointName names an endpoint in messages.
+func EndpointName(e int) string {
 	if e == Coordinator {
 		return "the coordinator"
 	}
