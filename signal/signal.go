@@ -183,21 +183,12 @@ func (l Learned) Loaded() bool { return l.C != nil }
 func (l Learned) Fill(c *Context, missing []int, out []int) {
 	inOrder, _ := l.C.(InOrder)
 	var buf [model.MaxRobots]int
-	prior := buf[:min(len(out), model.MaxRobots)]
 	for _, j := range missing {
 		k := position(c.Order, j)
 		if l.C != nil && k >= 0 {
 			u := -1
 			if inOrder != nil {
-				for i := range prior {
-					prior[i] = -1
-				}
-				for _, p := range c.Order[:k] {
-					if p < len(prior) {
-						prior[p] = out[p]
-					}
-				}
-				u = inOrder.PredictGiven(c.X, j, k, prior)
+				u = inOrder.PredictGiven(c.X, j, k, before(c.Order, k, out, buf[:]))
 			} else {
 				u = l.C.Predict(c.X, j, k)
 			}
@@ -252,14 +243,31 @@ func (r *Recompute) Fill(c *Context, missing []int, out []int) {
 			r.fallback.Fill(c, missing[i:i+1], out)
 			continue
 		}
-		for p := range r.known {
-			r.known[p] = -1
-		}
-		for _, p := range c.Order[:k] {
-			r.known[p] = out[p]
-		}
-		out[j], _ = r.dec.Turn(c.X, j, r.known, decide.TurnSeed(c.Seed, int(c.Round), j), c.Decide)
+		out[j] = r.turn(c, j, k, out)
 	}
+}
+
+// turn is predecessor j's own rollout turn at position k, knowing what
+// out holds for the robots before it.
+func (r *Recompute) turn(c *Context, j, k int, out []int) int {
+	u, _ := r.dec.Turn(c.X, j, before(c.Order, k, out, r.known), decide.TurnSeed(c.Seed, int(c.Round), j), c.Decide)
+	return u
+}
+
+// before writes into dst (len >= robots) out's controls for the robots
+// at positions 0..k-1 of order, -1 for every other robot, and returns the
+// robots' part of dst: what robot order[k] knows when it decides.
+func before(order []int, k int, out, dst []int) []int {
+	dst = dst[:min(len(out), len(dst))]
+	for i := range dst {
+		dst[i] = -1
+	}
+	for _, p := range order[:k] {
+		if p < len(dst) {
+			dst[p] = out[p]
+		}
+	}
+	return dst
 }
 
 // Sources builds, caches and names the guess sources round starts ask for,
@@ -362,21 +370,12 @@ func (c *Checked) Paths() Paths { return c.paths }
 
 func (c *Checked) Fill(ctx *Context, missing []int, out []int) {
 	var buf [model.MaxRobots]int
-	prior := buf[:min(len(out), model.MaxRobots)]
 	recomputed := 0
 	for _, j := range missing {
 		k := position(ctx.Order, j)
 		u, sure := -1, 0.0
 		if c.conf != nil && k >= 0 {
-			for p := range prior {
-				prior[p] = -1
-			}
-			for _, p := range ctx.Order[:k] {
-				if p < len(prior) {
-					prior[p] = out[p]
-				}
-			}
-			u, sure = c.conf.PredictConfident(ctx.X, j, k, prior)
+			u, sure = c.conf.PredictConfident(ctx.X, j, k, before(ctx.Order, k, out, buf[:]))
 			if !valid(c.m, ctx.X, j, u) {
 				u, sure = -1, 0
 			}
@@ -387,14 +386,7 @@ func (c *Checked) Fill(ctx *Context, missing []int, out []int) {
 			c.paths.Confident++
 		case k >= 0 && (c.rec.max == 0 || recomputed < c.rec.max) && (ctx.Expired == nil || !ctx.Expired()):
 			// Expired is asked once per turn recomputed (it books the time).
-			r := c.rec
-			for p := range r.known {
-				r.known[p] = -1
-			}
-			for _, p := range ctx.Order[:k] {
-				r.known[p] = out[p]
-			}
-			out[j], _ = r.dec.Turn(ctx.X, j, r.known, decide.TurnSeed(ctx.Seed, int(ctx.Round), j), ctx.Decide)
+			out[j] = c.rec.turn(ctx, j, k, out)
 			recomputed++
 			c.paths.Recomputed++
 		default:

@@ -283,17 +283,11 @@ func (p *parallelGuess) Decide(x model.State, round int, out []int) (decide.Stat
 		p.known = make([]int, n)
 	}
 	for k := range n {
-		for j := range p.known {
-			p.known[j] = -1
-		}
 		if p.net != nil {
-			for j := range k {
-				prior := p.known // robots 0..j-1 guessed already, the rest -1
-				if u := p.net.PredictGiven(x, j, j, prior); u >= 0 && u < p.m.NumControls(x, j) {
-					p.known[j] = u
-				} else {
-					p.known[j] = p.m.Base(x, j)
-				}
+			p.net.GuessInOrder(p.m, x, k, p.known)
+		} else {
+			for j := range p.known {
+				p.known[j] = -1 // at base: what decide assumes of unknowns
 			}
 		}
 		out[k], _ = p.d.Turn(x, k, p.known, decide.TurnSeed(p.seed, round, k))

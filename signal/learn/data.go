@@ -237,21 +237,7 @@ func CollectOnPolicy(m model.Model, p decide.Config, net *Net, episodes int, see
 			// The fleet acts as a parallel one: robot k guesses robots
 			// 0..k-1 in order, then takes its rollout turn.
 			for k := range robots {
-				for j := range known {
-					known[j] = -1
-				}
-				for j := range k {
-					for i := range prior {
-						prior[i] = -1
-						if i < j {
-							prior[i] = known[i]
-						}
-					}
-					known[j] = net.PredictGiven(x, j, j, prior)
-					if known[j] < 0 || known[j] >= m.NumControls(x, j) {
-						known[j] = m.Base(x, j)
-					}
-				}
+				net.GuessInOrder(m, x, k, known)
 				act[k], _ = dec.Turn(x, k, known, decide.TurnSeed(fleet, step, k))
 			}
 			rng.Reseed(episode.WorldSeed(es, step))

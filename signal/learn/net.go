@@ -247,6 +247,24 @@ func (n *Net) Accuracy(d *Dataset) float64 {
 	return float64(hit) / float64(d.Len())
 }
 
+// GuessInOrder is what robot k of a parallel fleet (turn order 0..m-1)
+// assumes of its predecessors: known[j] for j < k is the net's guess for
+// robot j, made knowing the guesses before it (base where the guess is not
+// a control of j); every other entry is -1.
+func (n *Net) GuessInOrder(m model.Model, x model.State, k int, known []int) {
+	for j := range known {
+		known[j] = -1
+	}
+	for j := range k {
+		// known holds exactly robots 0..j-1's guesses here.
+		if u := n.PredictGiven(x, j, j, known); u >= 0 && u < m.NumControls(x, j) {
+			known[j] = u
+		} else {
+			known[j] = m.Base(x, j)
+		}
+	}
+}
+
 // AccuracyByPosition is Accuracy per position in the turn order (index
 // k), for the positions d has samples of.
 func (n *Net) AccuracyByPosition(d *Dataset) []float64 {
