@@ -37,17 +37,7 @@ func TestFleetIdentities(t *testing.T) {
 	if err != nil {
 		t.Fatalf("the generated configuration does not load: %v\n%s", err, text)
 	}
-	opts.NoLog, opts.NoSigs = true, true
-	ns, err := server.NewServer(opts)
-	if err != nil {
-		t.Fatal(err)
-	}
-	go ns.Start()
-	defer ns.Shutdown()
-	if !ns.ReadyForConnections(10 * time.Second) {
-		t.Fatal("server not ready")
-	}
-	url := ns.ClientURL()
+	url := runServer(t, opts)
 	lg := zap.NewNop()
 	if nc, err := nats.Connect(url, nats.MaxReconnects(0)); err == nil {
 		nc.Close()

@@ -67,16 +67,7 @@ func TestTLS(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	ns, err := server.NewServer(&server.Options{Host: "127.0.0.1", Port: -1, NoLog: true, NoSigs: true, TLSConfig: tc, TLSVerify: true, TLSTimeout: 2})
-	if err != nil {
-		t.Fatal(err)
-	}
-	go ns.Start()
-	defer ns.Shutdown()
-	if !ns.ReadyForConnections(10 * time.Second) {
-		t.Fatal("server not ready")
-	}
-	url := ns.ClientURL()
+	url := runServer(t, &server.Options{Host: "127.0.0.1", Port: -1, TLSConfig: tc, TLSVerify: true, TLSTimeout: 2})
 	if nc, err := nats.Connect(url, nats.MaxReconnects(0)); err == nil {
 		nc.Close()
 		t.Fatal("a plaintext client connected")
@@ -101,4 +92,21 @@ func TestTLS(t *testing.T) {
 	if _, err := (&Common{TLSCert: cliCert}).TLSOptions(); err == nil {
 		t.Fatal("--tls-cert without --tls-key accepted")
 	}
+}
+
+// runServer starts a NATS server in-process for the test and returns its
+// client URL; it stops with the test.
+func runServer(t *testing.T, opts *server.Options) string {
+	t.Helper()
+	opts.NoLog, opts.NoSigs = true, true
+	ns, err := server.NewServer(opts)
+	if err != nil {
+		t.Fatal(err)
+	}
+	go ns.Start()
+	t.Cleanup(ns.Shutdown)
+	if !ns.ReadyForConnections(10 * time.Second) {
+		t.Fatal("server not ready")
+	}
+	return ns.ClientURL()
 }
