@@ -113,3 +113,21 @@ func BenchmarkFeatures(b *testing.B) {
 		})
 	}
 }
+
+// BenchmarkPredictDefaultSize is a guess at sim train's default size (64
+// hidden units; the fixture's net has 32), given predecessors' controls.
+func BenchmarkPredictDefaultSize(b *testing.B) {
+	for _, name := range []string{"harbor", "upkeep"} {
+		fx := getFixture(b, name)
+		net, _ := Train(fx.f, fx.train, TrainConfig{Seed: 1, Hidden: []int{64}, Epochs: 2})
+		net.f, net.m = fx.f, fx.m
+		prior := make([]int, fx.m.Robots())
+		prior[0] = 0
+		b.Run(name, func(b *testing.B) {
+			b.ReportAllocs()
+			for i := 0; i < b.N; i++ {
+				net.PredictGiven(fx.states[i%len(fx.states)], 1, 1, prior)
+			}
+		})
+	}
+}
