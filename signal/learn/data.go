@@ -91,8 +91,16 @@ func (d *Dataset) appendFrom(src *Dataset, i int) {
 // episode.Seed(seed, i) for its start, world and fleet seeds, so a run
 // replays exactly.
 func Collect(m model.Model, p decide.Config, episodes int, seed uint64, base model.Model) (*Dataset, error) {
+	return collect(m, p, episodes, seed, base, nil)
+}
+
+// collect plays episodes of m and labels every state with one-at-a-time
+// rollout on base (nil: m). The world carries out the labels, or, with
+// act, the joint control act picks (it may use dec, the labeller).
+func collect(m model.Model, p decide.Config, episodes int, seed uint64, base model.Model,
+	act func(dec *decide.Decider, x model.State, fleet uint64, step int, u []int)) (*Dataset, error) {
 	if episodes < 1 {
-		return nil, errors.New("learn: Collect needs at least one episode")
+		return nil, errors.New("learn: collecting needs at least one episode")
 	}
 	if base == nil {
 		base = m
@@ -105,21 +113,24 @@ func Collect(m model.Model, p decide.Config, episodes int, seed uint64, base mod
 	if err != nil {
 		return nil, err
 	}
-	robots, classes, inputs := m.Robots(), m.MaxControls(), f.Size()
-	d := &Dataset{scenario: f.Scenario(), version: f.Version(), robots: robots, inputs: inputs, classes: classes, episodes: episodes}
+	robots := m.Robots()
+	d := &Dataset{scenario: f.Scenario(), version: f.Version(), robots: robots, inputs: f.Size(), classes: m.MaxControls(), episodes: episodes}
 	dec := decide.New(base, p)
 	x := m.NewState()
-	u := make([]int, robots)
-	prior := make([]int, robots)
+	label, prior, u := make([]int, robots), make([]int, robots), make([]int, robots)
 	rng := model.NewRNG(0)
 	for ep := range episodes {
 		es := episode.Seed(seed, ep)
 		episode.Start(m, es, x)
 		fleet := episode.FleetSeed(es)
 		for step := 1; step <= m.Horizon() && !m.Terminal(x); step++ {
-			dec.OneAtATime(x, nil, fleet, step, u)
-			if err := d.record(m, f, x, u, prior, ep); err != nil {
+			dec.OneAtATime(x, nil, fleet, step, label)
+			if err := d.record(m, f, x, label, prior, ep); err != nil {
 				return nil, err
+			}
+			copy(u, label)
+			if act != nil {
+				act(dec, x, fleet, step, u)
 			}
 			rng.Reseed(episode.WorldSeed(es, step))
 			m.Step(x, u, rng.Rand)
@@ -205,46 +216,18 @@ func (d *Dataset) Split(testFrac float64, seed uint64) (train, test *Dataset) {
 //
 // base is the rollout's base policy as in Collect (nil: m).
 func CollectOnPolicy(m model.Model, p decide.Config, net *Net, episodes int, seed uint64, base model.Model) (*Dataset, error) {
-	if episodes < 1 {
-		return nil, errors.New("learn: CollectOnPolicy needs at least one episode")
-	}
-	if base == nil {
-		base = m
-	}
-	f, err := FeaturizerFor(m)
-	if err != nil {
-		return nil, err
-	}
 	if net == nil {
 		return nil, errors.New("learn: CollectOnPolicy needs a net to guess with")
 	}
-	robots, classes, inputs := m.Robots(), m.MaxControls(), f.Size()
-	d := &Dataset{scenario: f.Scenario(), version: f.Version(), robots: robots, inputs: inputs, classes: classes, episodes: episodes}
-	dec := decide.New(base, p)
-	x := m.NewState()
-	teacher, act := make([]int, robots), make([]int, robots)
-	prior, known := make([]int, robots), make([]int, robots)
-	rng := model.NewRNG(0)
-	for ep := range episodes {
-		es := episode.Seed(seed, ep)
-		episode.Start(m, es, x)
-		fleet := episode.FleetSeed(es)
-		for step := 1; step <= m.Horizon() && !m.Terminal(x); step++ {
-			dec.OneAtATime(x, nil, fleet, step, teacher)
-			if err := d.record(m, f, x, teacher, prior, ep); err != nil {
-				return nil, err
-			}
-			// The fleet acts as a parallel one: robot k guesses robots
-			// 0..k-1 in order, then takes its rollout turn.
-			for k := range robots {
-				net.GuessInOrder(m, x, k, known)
-				act[k], _ = dec.Turn(x, k, known, decide.TurnSeed(fleet, step, k))
-			}
-			rng.Reseed(episode.WorldSeed(es, step))
-			m.Step(x, act, rng.Rand)
+	known := make([]int, m.Robots())
+	// The fleet acts as a parallel one: robot k guesses robots 0..k-1 in
+	// order, then takes its rollout turn.
+	return collect(m, p, episodes, seed, base, func(dec *decide.Decider, x model.State, fleet uint64, step int, u []int) {
+		for k := range u {
+			net.GuessInOrder(m, x, k, known)
+			u[k], _ = dec.Turn(x, k, known, decide.TurnSeed(fleet, step, k))
 		}
-	}
-	return d, nil
+	})
 }
 
 // Append adds o's samples to d, its episodes numbered after d's (both
