@@ -145,23 +145,7 @@ func TestJSONEveryFloatField(t *testing.T) {
 	r := fakeReport(1)
 	r.Configs = r.Configs[:1]
 	nans := 0
-	var walk func(v reflect.Value)
-	walk = func(v reflect.Value) {
-		switch v.Kind() {
-		case reflect.Float64:
-			v.SetFloat(math.NaN())
-			nans++
-		case reflect.Struct:
-			for i := range v.NumField() {
-				walk(v.Field(i))
-			}
-		case reflect.Slice:
-			for i := range v.Len() {
-				walk(v.Index(i))
-			}
-		}
-	}
-	walk(reflect.ValueOf(r).Elem())
+	floats(reflect.ValueOf(r).Elem(), func(v reflect.Value) { v.SetFloat(math.NaN()); nans++ })
 	b, err := json.Marshal(r)
 	if err != nil {
 		t.Fatalf("marshal with every float NaN: %v", err)
@@ -171,25 +155,29 @@ func TestJSONEveryFloatField(t *testing.T) {
 		t.Fatal(err)
 	}
 	back := 0
-	walk = func(v reflect.Value) {
-		switch v.Kind() {
-		case reflect.Float64:
-			if math.IsNaN(v.Float()) {
-				back++
-			}
-		case reflect.Struct:
-			for i := range v.NumField() {
-				walk(v.Field(i))
-			}
-		case reflect.Slice:
-			for i := range v.Len() {
-				walk(v.Index(i))
-			}
+	floats(reflect.ValueOf(&got).Elem(), func(v reflect.Value) {
+		if math.IsNaN(v.Float()) {
+			back++
 		}
-	}
-	walk(reflect.ValueOf(&got).Elem())
+	})
 	if back != nans || nans < 20 {
 		t.Errorf("%d NaN floats written, %d read back", nans, back)
+	}
+}
+
+// floats calls do on every float64 reachable from v (structs, slices).
+func floats(v reflect.Value, do func(reflect.Value)) {
+	switch v.Kind() {
+	case reflect.Float64:
+		do(v)
+	case reflect.Struct:
+		for i := range v.NumField() {
+			floats(v.Field(i), do)
+		}
+	case reflect.Slice:
+		for i := range v.Len() {
+			floats(v.Index(i), do)
+		}
 	}
 }
 
