@@ -1,17 +1,13 @@
 package main
 
 import (
-	"bufio"
 	"context"
-	"encoding/json"
 	"fmt"
 	"os"
 	"path/filepath"
 	"slices"
-	"strings"
 	"time"
 
-	"baton/coordinator/clock"
 	"baton/signal/learn"
 	"baton/sim/drill"
 	"baton/sim/fault"
@@ -57,7 +53,7 @@ func (p *processRunner) RunProcess(ctx context.Context, j drill.Job) (drill.Epis
 	o := fleetOpts{sc: scenarioFlags{name: d.Scenario, file: d.Site, robots: d.Model.Robots()}, clock: c, seed: d.Seed,
 		world: j.World, fleet: "drill", prefix: "baton", logDir: sub, exe: p.exe,
 		proxy: slices.ContainsFunc(procs, func(s fault.Spec) bool { return s.Kind == fault.Stall || s.Kind == fault.Reset })}
-	o.clock.Rounds = d.Rounds * 2 // bounded, with room for a restarted run
+	o.clock.Rounds = d.Rounds // the numbering goes on across coordinator restarts
 	if len(msg) > 0 {
 		o.plan = &drillPlan{Seed: j.FaultSeed, Specs: msg}
 	}
@@ -75,15 +71,20 @@ func (p *processRunner) RunProcess(ctx context.Context, j drill.Job) (drill.Epis
 		return drill.Episode{}, fmt.Errorf("%s: %w (logs in %s)", j.Point.Name(), err, sub)
 	}
 	ep, err := p.play(ctx, f, d.Rounds, procs)
+	if err == nil {
+		// No round lost or logged twice, across coordinator restarts:
+		// the durable log runs on 1, 2, 3...
+		var res replayResult
+		if res, err = f.replay(); err == nil && !res.Continuous() {
+			err = fmt.Errorf("durable decision log: %s", res.Summary())
+		}
+		if err == nil {
+			ep.Events = append(ep.Events, "durable decision log: "+res.Summary())
+		}
+	}
 	f.close()
 	if f.planFile != "" {
 		ep.Faults = planStats(f.planFile)
-	}
-	if err == nil {
-		var runs string
-		if runs, err = checkDecisionLog(f.decisionLog()); err == nil {
-			ep.Events = append(ep.Events, "decision log: "+runs)
-		}
 	}
 	if err != nil {
 		return ep, fmt.Errorf("%s: %w (logs in %s)", j.Point.Name(), err, sub)
@@ -109,7 +110,6 @@ func (p *processRunner) play(ctx context.Context, f *fleetRun, rounds int, procs
 	note := func(format string, args ...any) {
 		ep.Events = append(ep.Events, fmt.Sprintf("%6.1fs ", time.Since(t0).Seconds())+fmt.Sprintf(format, args...))
 	}
-	run := 1 // the coordinator run's round number
 	for r := 1; r <= rounds; r++ {
 		if err := ctx.Err(); err != nil {
 			return ep, err
@@ -143,8 +143,7 @@ func (p *processRunner) play(ctx context.Context, f *fleetRun, rounds int, procs
 				if err := f.waitNewRun(30 * time.Second); err != nil {
 					return ep, err
 				}
-				run = 1
-				note("round %d: coordinator back, its run starts at round 1", r)
+				note("round %d: coordinator back; its run continues the rounds from the durable log", r)
 			case fault.KillNATS:
 				note("round %d: NATS server stopped, back after %s", r, s.Down)
 				if err := f.restartNATS(s.Down); err != nil {
@@ -159,54 +158,15 @@ func (p *processRunner) play(ctx context.Context, f *fleetRun, rounds int, procs
 				note("round %d: robots' NATS connections reset", r)
 			}
 		}
-		res := f.play(run)
-		res.Round = r
+		res := f.play(r)
 		for i, u := range res.Decided {
 			if u >= 0 && slices.ContainsFunc(dead, func(x down) bool { return x.robot == i }) {
 				return ep, fmt.Errorf("round %d: robot %d is dead but decided", r, i)
 			}
 		}
 		ep.Rounds = append(ep.Rounds, res)
-		run++
 	}
 	return ep, nil
-}
-
-// checkDecisionLog reads a coordinator's decision log and checks that no
-// round was lost or logged twice: each run (epoch) numbers its rounds
-// 1, 2, 3... with no gap and no repeat. It says what it found, per run.
-func checkDecisionLog(path string) (string, error) {
-	file, err := os.Open(path)
-	if err != nil {
-		return "", fmt.Errorf("decision log: %w", err)
-	}
-	defer file.Close()
-	last := map[uint64]uint64{}
-	var epochs []uint64
-	sc := bufio.NewScanner(file)
-	sc.Buffer(nil, 1<<24)
-	for n := 1; sc.Scan(); n++ {
-		var rec clock.Record
-		if err := json.Unmarshal(sc.Bytes(), &rec); err != nil {
-			return "", fmt.Errorf("decision log %s line %d: %w", path, n, err)
-		}
-		prev, seen := last[rec.Epoch]
-		if !seen {
-			epochs = append(epochs, rec.Epoch)
-		}
-		if rec.Round != prev+1 {
-			return "", fmt.Errorf("decision log %s line %d: run %d logs round %d after round %d (a gap or a doubled round)", path, n, rec.Epoch, rec.Round, prev)
-		}
-		last[rec.Epoch] = rec.Round
-	}
-	if err := sc.Err(); err != nil {
-		return "", fmt.Errorf("decision log %s: %w", path, err)
-	}
-	var parts []string
-	for _, e := range epochs {
-		parts = append(parts, fmt.Sprintf("run %d rounds 1-%d", e, last[e]))
-	}
-	return strings.Join(parts, ", ") + ", no gap, no doubled round", nil
 }
 
 // slowAsDelay turns a slow-turn fault into delays on every link out of

@@ -1,6 +1,7 @@
 package main
 
 import (
+	"bufio"
 	"bytes"
 	"context"
 	"encoding/json"
@@ -20,6 +21,8 @@ import (
 	"sync"
 	"syscall"
 	"time"
+
+	"github.com/nats-io/nats.go"
 
 	"baton/agentd/node"
 	"baton/coordinator/clock"
@@ -102,6 +105,8 @@ type fleetRun struct {
 	wait     time.Duration
 
 	coordArgs []string
+	oldRuns   []string // the run each robot followed before a coordinator restart
+	store     string   // the embedded server's JetStream files, kept across its restarts
 }
 
 func startFleet(ctx context.Context, o fleetOpts) (*fleetRun, error) {
@@ -118,8 +123,14 @@ func startFleet(ctx context.Context, o fleetOpts) (*fleetRun, error) {
 	}
 	f := &fleetRun{o: o, m: fm, client: &http.Client{}, u: make([]int, m.Robots()), robots: make([]*proc, m.Robots())}
 	m = fm
-	f.ns, f.url, err = shell.EmbeddedNATS("127.0.0.1", 0)
+	// The server's JetStream files (guess models, the durable decision
+	// log) outlive a NATS restart, as on a real server's disk.
+	if f.store, err = os.MkdirTemp("", "baton-fleet-nats-"); err != nil {
+		return nil, err
+	}
+	f.ns, f.url, err = shell.EmbeddedNATSAt("127.0.0.1", 0, f.store)
 	if err != nil {
+		os.RemoveAll(f.store)
 		return nil, err
 	}
 	f.robotURL = f.url
@@ -194,6 +205,41 @@ func startFleet(ctx context.Context, o fleetOpts) (*fleetRun, error) {
 }
 
 func (f *fleetRun) decisionLog() string { return filepath.Join(f.o.logDir, "decisions.jsonl") }
+
+// durableLog is where the durable log's export goes.
+func (f *fleetRun) durableLog() string { return filepath.Join(f.o.logDir, "decisions-stream.jsonl") }
+
+// replay reads the coordinator's durable log from the embedded server,
+// writes it to durableLog, and puts the episode back together.
+func (f *fleetRun) replay() (replayResult, error) {
+	nc, err := nats.Connect(f.url)
+	if err != nil {
+		return replayResult{}, err
+	}
+	defer nc.Close()
+	out, err := os.Create(f.durableLog())
+	if err != nil {
+		return replayResult{}, err
+	}
+	defer out.Close()
+	bw := bufio.NewWriter(out)
+	ctx, cancel := context.WithTimeout(context.Background(), time.Minute)
+	defer cancel()
+	lines, err := readLogStream(ctx, nc, f.o.prefix, f.o.fleet, bw)
+	if ferr := bw.Flush(); err == nil {
+		err = ferr
+	}
+	if err != nil {
+		return replayResult{}, err
+	}
+	digest, err := shell.Digest(f.o.sc.name, f.o.sc.file, f.m.Robots())
+	if err != nil {
+		return replayResult{}, err
+	}
+	res, err := assemble(lines, f.m, digest)
+	res.Source = f.durableLog()
+	return res, err
+}
 
 // proc is a child process; done closes when it has exited.
 type proc struct {
@@ -295,6 +341,10 @@ func (f *fleetRun) restart(ctx context.Context, r int) error {
 // restartCoordinator kills the coordinator and starts it again with the
 // same flags; robots must find it again through gossip.
 func (f *fleetRun) restartCoordinator(ctx context.Context, down time.Duration) error {
+	f.oldRuns = make([]string, len(f.bases))
+	for r := range f.bases {
+		f.oldRuns[r] = f.runOf(r)
+	}
 	_ = f.coord.cmd.Process.Kill()
 	<-f.coord.done
 	time.Sleep(down)
@@ -305,21 +355,34 @@ func (f *fleetRun) restartCoordinator(ctx context.Context, down time.Duration) e
 	return f.waitAlive(ctx, f.m.Robots(), 30*time.Second)
 }
 
-// waitNewRun waits until every robot is in a restarted coordinator's
-// round 1 (their local interfaces still hold the old run's rounds).
+// runOf is the coordinator run robot r follows, as its /healthz says
+// ("run <epoch> round <n>"; "" when it says otherwise).
+func (f *fleetRun) runOf(r int) string {
+	resp, err := f.client.Get(f.bases[r] + "/healthz")
+	if err != nil {
+		return ""
+	}
+	body, _ := io.ReadAll(io.LimitReader(resp.Body, 1024))
+	resp.Body.Close()
+	_, rest, ok := strings.Cut(string(body), " run ")
+	if !ok {
+		return ""
+	}
+	run, _, _ := strings.Cut(rest, " ")
+	return run
+}
+
+// waitNewRun waits until every robot follows the restarted coordinator's
+// run. (The run continues the round numbering from the durable log.)
 func (f *fleetRun) waitNewRun(limit time.Duration) error {
-	for r, b := range f.bases {
+	for r := range f.bases {
 		deadline := time.Now().Add(limit)
 		for {
-			if resp, err := f.client.Get(b + "/healthz"); err == nil {
-				body, _ := io.ReadAll(resp.Body)
-				resp.Body.Close()
-				if strings.HasSuffix(string(body), " round 1\n") {
-					break
-				}
+			if run := f.runOf(r); run != "" && run != f.oldRuns[r] {
+				break
 			}
 			if time.Now().After(deadline) {
-				return fmt.Errorf("robot %d never started the new coordinator's round 1", r)
+				return fmt.Errorf("robot %d never followed the restarted coordinator's run", r)
 			}
 			time.Sleep(20 * time.Millisecond)
 		}
@@ -397,6 +460,9 @@ func (f *fleetRun) close() {
 	if f.ns != nil {
 		f.ns.Shutdown()
 	}
+	if f.store != "" {
+		os.RemoveAll(f.store)
+	}
 }
 
 // faultPlan is the fault layer's plan for the daemons: the drill's, plus
@@ -433,7 +499,7 @@ func (f *fleetRun) restartNATS(down time.Duration) error {
 	port, _ := strconv.Atoi(portStr)
 	var lastErr error
 	for range 50 { // the old listener may linger a moment
-		if f.ns, _, lastErr = shell.EmbeddedNATS(host, port); lastErr == nil {
+		if f.ns, _, lastErr = shell.EmbeddedNATSAt(host, port, f.store); lastErr == nil {
 			return nil
 		}
 		time.Sleep(100 * time.Millisecond)
@@ -590,6 +656,11 @@ exactly what the real fleet decides for the same flags: compare decisions_sha256
 			}
 		}
 		w = f.world
+		if res, err := f.replay(); err != nil {
+			fmt.Fprintf(os.Stderr, "sim fleet: reading the durable decision log: %v\n", err)
+		} else {
+			sum.DurableLog = res.Source
+		}
 		f.close()
 	}
 	sum.Batches = w.Batch
@@ -616,6 +687,13 @@ exactly what the real fleet decides for the same flags: compare decisions_sha256
 	}
 	if sum.DecisionLog != "" {
 		fmt.Printf("decision log %s\n", sum.DecisionLog)
+	}
+	if sum.DurableLog != "" {
+		replayArgs := []string{"--file", sum.DurableLog, "--scenario", o.sc.name, "--robots", strconv.Itoa(sum.Robots)}
+		if o.sc.file != "" {
+			replayArgs = append(replayArgs, "--config", o.sc.file)
+		}
+		fmt.Printf("durable log (JetStream stream, exported) %s; replay: sim replay %s\n", sum.DurableLog, strings.Join(replayArgs, " "))
 	}
 	fmt.Printf("decisions sha256 %s\n", sum.DecisionsSHA256)
 	if interrupted {

@@ -1,9 +1,7 @@
 package main
 
 import (
-	"bufio"
 	"context"
-	"encoding/json"
 	"fmt"
 	"io"
 	"os"
@@ -138,8 +136,9 @@ func TestHostileMessages(t *testing.T) {
 }
 
 // A coordinator SIGKILLed mid-run and started again: the robots follow the
-// new run at once, its first round has every robot at the position it
-// reported, and the decision log tells the two runs apart.
+// new run at once; it continues the round numbering from the durable log
+// (no round lost, none numbered twice); its first round has every robot at
+// the position it reported; and the log tells the two runs apart.
 func TestFleetCoordinatorKilled(t *testing.T) {
 	f := testFleet(t, opts("harbor", 3, 200, 4, nil))
 	for r := 1; r <= 3; r++ {
@@ -150,43 +149,43 @@ func TestFleetCoordinatorKilled(t *testing.T) {
 	old := record(t, f, 3)
 	ctx, cancel := context.WithTimeout(context.Background(), 45*time.Second)
 	defer cancel()
-	// Down long enough for gossip to declare it dead everywhere.
+	// Down long enough for gossip to declare it dead everywhere. Round 4
+	// is in play when it dies (closed and waiting for reports, or not).
 	if err := f.restartCoordinator(ctx, 3*time.Second); err != nil {
 		t.Fatal(err)
 	}
 	waitNewRun(t, f)
-	// Where the robots are: what they reported after the old run's round
-	// 3 (the world has not moved since).
+	// Where the robots are: what they reported after round 3 (the world
+	// has not moved since).
 	reported := make([]int32, f.m.Robots())
 	for r := range reported {
 		reported[r], _ = f.world.Report(r)
 	}
-	for r := 1; r <= 3; r++ {
+	first := roundOf(t, f, 0)
+	if first != 4 && first != 5 {
+		t.Fatalf("the new run started at round %d; the old one had closed round 3 and maybe 4", first)
+	}
+	for r := first; r < first+3; r++ {
 		if res := f.play(r); res.Held != 0 {
-			t.Fatalf("round %d of the new run: %d robots held", r, res.Held)
+			t.Fatalf("round %d (the new run's): %d robots held", r, res.Held)
 		}
 	}
-	lines := logLines(t, f)
-	runs := map[uint64][]uint64{}
-	seen := map[[2]uint64]bool{}
-	var first *clock.Record
-	for i, l := range lines {
-		if seen[[2]uint64{l.Epoch, l.Round}] {
-			t.Fatalf("(epoch %d, round %d) logged twice", l.Epoch, l.Round)
-		}
-		seen[[2]uint64{l.Epoch, l.Round}] = true
-		runs[l.Epoch] = append(runs[l.Epoch], l.Round)
-		if l.Epoch != old.Epoch && l.Round == 1 {
-			first = &lines[i]
-		}
+	rec := record(t, f, first)
+	if rec.Epoch <= old.Epoch {
+		t.Fatalf("round %d logged by run %d, not a newer run than %d", first, rec.Epoch, old.Epoch)
 	}
-	if len(runs) != 2 || first == nil || first.Epoch <= old.Epoch {
-		t.Fatalf("want two runs in the log, the new one later: %v", runs)
+	res, err := f.replay()
+	if err != nil {
+		t.Fatal(err)
 	}
-	// The new run's round 1 decided on the positions the robots reported
-	// (re-sent on request), which are the world's.
+	if !res.Continuous() || len(res.Runs) != 2 || res.Runs[0].Epoch != old.Epoch || res.Runs[1].First != uint64(first) ||
+		res.Runs[0].Last != uint64(first-1) || res.First != 1 {
+		t.Fatalf("durable log: %s, runs %+v", res.Summary(), res.Runs)
+	}
+	// The new run's first round decided on the positions the robots
+	// reported (re-sent on request), which are the world's.
 	x := f.m.NewState()
-	if err := f.m.Unflatten(x, first.Snapshot.Ints, first.Snapshot.Reals); err != nil {
+	if err := f.m.Unflatten(x, rec.Snapshot.Ints, rec.Snapshot.Reals); err != nil {
 		t.Fatal(err)
 	}
 	// A coordinator that ignored the reports would start from this.
@@ -196,7 +195,7 @@ func TestFleetCoordinatorKilled(t *testing.T) {
 	for r, want := range reported {
 		moved = moved || f.m.Position(blank, r) != want
 		if got := f.m.Position(x, r); got != want {
-			t.Errorf("new run's round 1 has robot %d at %d, it reported %d", r, got, want)
+			t.Errorf("new run's round %d has robot %d at %d, it reported %d", first, r, got, want)
 		}
 	}
 	if !moved {
@@ -206,6 +205,26 @@ func TestFleetCoordinatorKilled(t *testing.T) {
 	if strings.Contains(string(coordLog), "without a report") {
 		t.Errorf("the restarted coordinator started without some robot's report:\n%s", coordLog)
 	}
+	if !strings.Contains(string(coordLog), "continuing the fleet's rounds from the durable log") {
+		t.Errorf("the restarted coordinator does not say it continued from the log:\n%s", coordLog)
+	}
+}
+
+// roundOf is the round robot r follows, from its /healthz.
+func roundOf(t *testing.T, f *fleetRun, r int) int {
+	t.Helper()
+	resp, err := f.client.Get(f.bases[r] + "/healthz")
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer resp.Body.Close()
+	body, _ := io.ReadAll(resp.Body)
+	_, n, ok := strings.Cut(strings.TrimSpace(string(body)), " round ")
+	v, err := strconv.Atoi(n)
+	if !ok || err != nil {
+		t.Fatalf("robot %d /healthz: %q", r, body)
+	}
+	return v
 }
 
 // Sequential mode with a robot whose decisions never come in time: every
@@ -238,26 +257,6 @@ func TestSequentialStall(t *testing.T) {
 	if strings.Contains(logText, "robot 2 is alive but has missed") || strings.Contains(logText, "robot 3 is alive but has missed") {
 		t.Fatalf("the coordinator blames robots that were only waiting:\n%s", logText)
 	}
-}
-
-func logLines(t *testing.T, f *fleetRun) []clock.Record {
-	t.Helper()
-	file, err := os.Open(f.decisionLog())
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer file.Close()
-	var out []clock.Record
-	sc := bufio.NewScanner(file)
-	sc.Buffer(nil, 1<<24)
-	for sc.Scan() {
-		var rec clock.Record
-		if err := json.Unmarshal(sc.Bytes(), &rec); err != nil {
-			t.Fatalf("decision log line %q: %v", sc.Text(), err)
-		}
-		out = append(out, rec)
-	}
-	return out
 }
 
 // waitNewRun waits until every robot follows a run's round 1 again.

@@ -25,6 +25,7 @@ commands:
   bench     bench rounds: hop and round latency against the physics
   soak      a process fleet for many rounds under loss: goroutines, heap, fds, log size
   creds     a fleet's NATS identities (nkeys) and the server's permissions
+  replay    rebuild an episode from a decision log (durable stream or file), recompute its cost
   drill     run a drill file: fleets through scheduled faults, and what each costs
   train     learn a stand-in for rollout (the learned guess source); --iterations K
             repeats train-then-use-as-base (approximate policy iteration)
@@ -66,6 +67,8 @@ func run(args []string) int {
 		err = cmdCreds(args[1:])
 	case "soak":
 		err = cmdSoak(args[1:])
+	case "replay":
+		err = cmdReplay(args[1:])
 	case "-h", "-help", "--help", "help":
 		fmt.Print(usage)
 		return 0

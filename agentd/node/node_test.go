@@ -503,7 +503,7 @@ func TestHealth(t *testing.T) {
 	}
 	r.start(1, []uint32{1, 0}, nil)
 	waitFor(t, func() bool { return r.n.Round() == 1 })
-	if code, body := health(); code != 200 || body != "ok robot 1 fleet yard round 1\n" {
+	if code, body := health(); code != 200 || body != "ok robot 1 fleet yard run 0 round 1\n" {
 		t.Fatalf("%d %q", code, body)
 	}
 	// Only far-future round starts arrive: the robot holds, and says so.

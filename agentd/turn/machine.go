@@ -281,8 +281,10 @@ func (m *Machine) checkStart(s Start) (current, DropReason, string) {
 }
 
 // fresh decides whether a round start is believed: it continues the run
-// followed (within RoundWindow), starts a newer run near round 1, or its
-// run has kept coming while the one followed went quiet (ResyncAfter).
+// followed (within RoundWindow), starts a newer run near round 1 or near
+// the round followed (a restarted coordinator continues the numbering from
+// its durable log), or its run has kept coming while the one followed went
+// quiet (ResyncAfter).
 func (m *Machine) fresh(s Start) (newRun, resync bool, d *Drop) {
 	if !m.following {
 		return true, false, nil
@@ -299,10 +301,10 @@ func (m *Machine) fresh(s Start) (newRun, resync bool, d *Drop) {
 		reason, why = DropFuture, fmt.Sprintf("round %d is more than %d rounds ahead of current round %d", s.Round, RoundWindow, m.cur.round)
 	case s.Epoch == m.epoch:
 		return false, false, nil
-	case s.Epoch > m.epoch && s.Round <= RoundWindow:
+	case s.Epoch > m.epoch && (s.Round <= RoundWindow || s.Round <= m.cur.round+RoundWindow):
 		return true, false, nil
 	case s.Epoch > m.epoch:
-		reason, why = DropFuture, fmt.Sprintf("a new coordinator run (epoch %d) at round %d: runs start at round 1", s.Epoch, s.Round)
+		reason, why = DropFuture, fmt.Sprintf("a new coordinator run (epoch %d) at round %d: runs start at round 1 or continue near the round followed (%d)", s.Epoch, s.Round, m.cur.round)
 	default:
 		reason, why = DropStale, fmt.Sprintf("epoch %d is an older coordinator run than %d", s.Epoch, m.epoch)
 	}
@@ -501,7 +503,8 @@ func (m *Machine) onDecision(e GotDecision) []Action {
 
 // onOtherRound handles a decision that is not for the current round: kept
 // when it is for the round about to start (the next round of this run, or
-// round 1 of a newer run), else dropped.
+// a newer run's round 1 or a round that continues the numbering), else
+// dropped.
 func (m *Machine) onOtherRound(d Decision, robot int, sender string) []Action {
 	switch {
 	case d.Round == 0:
@@ -509,7 +512,7 @@ func (m *Machine) onOtherRound(d Decision, robot int, sender string) []Action {
 	case !m.following:
 	case d.Epoch == m.epoch && d.Round < m.cur.round, d.Epoch < m.epoch:
 		return m.drop(DropStale, sender, "decision for round %d of run %d; current is round %d of run %d", d.Round, d.Epoch, m.cur.round, m.epoch)
-	case d.Epoch == m.epoch && d.Round == m.cur.round+1, d.Epoch > m.epoch && d.Round == 1:
+	case d.Epoch == m.epoch && d.Round == m.cur.round+1, d.Epoch > m.epoch && (d.Round == 1 || d.Round == m.cur.round || d.Round == m.cur.round+1):
 	default:
 		return m.drop(DropFuture, sender, "decision for round %d of run %d; current is round %d of run %d", d.Round, d.Epoch, m.cur.round, m.epoch)
 	}
@@ -895,5 +898,5 @@ func (m *Machine) Health(now time.Duration) (bool, string) {
 		return false, fmt.Sprintf("holding: no round start admitted for %s since round %d (coordinator gone, or its round starts refused: see the dropped-message counts)",
 			(now - m.lastAt).Truncate(time.Millisecond), m.cur.round)
 	}
-	return true, fmt.Sprintf("round %d", m.cur.round)
+	return true, fmt.Sprintf("run %d round %d", m.epoch, m.cur.round)
 }

@@ -233,6 +233,29 @@ func TestCoordinatorRuns(t *testing.T) {
 	}
 }
 
+// A restarted coordinator that continues the numbering from its durable
+// log (a larger epoch, the round after the last one it closed) is believed
+// near the round followed, and so are its early decisions; far from it is
+// not.
+func TestResumedRun(t *testing.T) {
+	r := newRig(t)
+	r.step(GotStart{Now: 0, Msg: r.start(7, 300, Sequential)})
+	dropOf(t, r.step(GotStart{Now: 1, Msg: r.start(8, 301+RoundWindow, Sequential)}), DropFuture)
+	r.step(heard(2, dec(8, 301, 0, 3)))
+	acts := r.step(GotStart{Now: 3, Msg: r.start(8, 301, Sequential)})
+	if b := only[Began](t, acts); !b.NewRun || b.Round != 301 {
+		t.Fatalf("%+v", b)
+	}
+	if c := only[Compute](t, acts); c.Known[0] != 3 {
+		t.Fatalf("the resumed run's early decision was not kept: %+v", c)
+	}
+	// The round in play when a coordinator died is played again by the
+	// next run under its own epoch.
+	if b := only[Began](t, r.step(GotStart{Now: 4, Msg: r.start(9, 301, Sequential)})); !b.NewRun || b.Round != 301 {
+		t.Fatalf("%+v", b)
+	}
+}
+
 func TestBadDecisions(t *testing.T) {
 	r := newRig(t)
 	r.step(GotStart{Now: 0, Msg: r.start(7, 5, Sequential)})

@@ -140,13 +140,18 @@ func (Drop) isAction()      {}
 // Record is one round as the decision log keeps it. (Epoch, Round) is
 // unique across runs: a restarted coordinator has a larger epoch.
 type Record struct {
-	Epoch     uint64     `json:"epoch"`
-	Round     uint64     `json:"round"`
-	Mode      string     `json:"mode"`
-	Guess     string     `json:"guess"`
-	Model     uint64     `json:"guess_model_version,omitempty"`
-	Order     []int      `json:"order"`
-	Controls  []int      `json:"controls"`
+	Epoch    uint64 `json:"epoch"`
+	Round    uint64 `json:"round"`
+	Scenario string `json:"scenario"`
+	Digest   string `json:"digest"`
+	Mode     string `json:"mode"`
+	Guess    string `json:"guess"`
+	Model    uint64 `json:"guess_model_version,omitempty"`
+	Order    []int  `json:"order"`
+	Controls []int  `json:"controls"`
+	// Applied is what each robot carried out (its report's, else the
+	// decided control): the stage cost is the state's under these.
+	Applied   []int      `json:"applied,omitempty"`
 	Held      []int      `json:"held"`
 	Stalled   *int       `json:"stalled_by,omitempty"`
 	Decisions []Decision `json:"decisions"`
@@ -321,6 +326,11 @@ func (c *Machine) drop(r turn.DropReason, sender, format string, args ...any) []
 
 func (c *Machine) begin() []Action {
 	c.phase, c.gatherAt, c.first = gathering, c.now, true
+	c.round = c.cfg.Resume
+	if c.cfg.Rounds > 0 && c.round >= uint64(c.cfg.Rounds) {
+		c.phase = finished
+		return []Action{Note{Text: fmt.Sprintf("all %d rounds are already in the decision log; nothing left to play", c.cfg.Rounds), Robot: -1}, Finished{}}
+	}
 	c.x = c.m.NewState()
 	c.m.Start(c.x, model.NewRNG(0).Rand)
 	c.helloAt = c.now + c.cfg.HelloEvery
@@ -475,7 +485,7 @@ func (c *Machine) start(order []int) []Action {
 	clear(c.conflict)
 	clear(c.reports)
 	ints, reals := c.m.Flatten(c.x, nil, nil)
-	c.rec = Record{Epoch: c.cfg.Epoch, Round: c.round, Mode: c.mode.String(), Guess: c.cfg.Guess, Model: c.model,
+	c.rec = Record{Epoch: c.cfg.Epoch, Round: c.round, Scenario: c.m.Name(), Digest: c.cfg.Digest, Mode: c.mode.String(), Guess: c.cfg.Guess, Model: c.model,
 		Order: order, Controls: make([]int, c.robots), Held: []int{}, Decisions: []Decision{},
 		Snapshot: &StateWire{Ints: ints, Reals: reals}, Start: c.now}
 
@@ -653,6 +663,7 @@ func (c *Machine) file() Filed {
 			u[r] = int(o.Applied)
 		}
 	}
+	c.rec.Applied = u
 	c.rec.Stage = c.m.Advance(c.x, u)
 	c.rec.Reports, c.rec.Missing = 0, []int{}
 	for r, o := range c.reports {

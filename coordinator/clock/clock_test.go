@@ -701,3 +701,41 @@ func TestHeldRobotNotWaitedFor(t *testing.T) {
 		t.Fatalf("%+v", f)
 	}
 }
+
+// A run resumed from the durable log (Resume: the last round an earlier run
+// closed) numbers its rounds on from there, finishes at Rounds as a fresh
+// run would, and has nothing to play when the log already holds them all.
+func TestResumeContinuesNumbering(t *testing.T) {
+	cfg := config(t, 3)
+	cfg.Resume, cfg.Rounds = 41, 42
+	r := newRig(t, cfg)
+	r.step(Begin{Now: 0})
+	r.step(Members{Now: 0, Alive: []int{0, 1, 2}})
+	var acts []Action
+	for i := range 3 {
+		// The robots re-send their reports of the old run's round 41.
+		acts = r.report(i, epoch-5, 41, int32(30+i), 0)
+	}
+	s := one[SendStart](t, acts).Msg
+	if s.Round != 42 || s.Epoch != epoch {
+		t.Fatalf("resumed run starts round %d of %d, want 42", s.Round, s.Epoch)
+	}
+	for i := range 3 {
+		r.decide(i, 42, 0)
+	}
+	for i := range 3 {
+		acts = r.report(i, epoch, 42, int32(30+i), 0)
+	}
+	if f := one[Filed](t, acts).Record; f.Round != 42 || f.Epoch != epoch {
+		t.Fatalf("%+v", f)
+	}
+	one[Finished](t, acts)
+
+	cfg.Resume = 42
+	done := newRig(t, cfg)
+	acts = done.step(Begin{Now: 0})
+	one[Finished](t, acts)
+	if len(of[SendStart](done.at(10*time.Second))) != 0 {
+		t.Fatal("a run with every round in the log started one")
+	}
+}

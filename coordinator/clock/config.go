@@ -39,8 +39,14 @@ type Config struct {
 	// Period: rounds start at most this often (0: as soon as the previous
 	// round's reports are in).
 	Period time.Duration
-	// Rounds to run (0: until stopped).
+	// Rounds to run (0: until stopped), counted from round 1 of the
+	// fleet's first run: a resumed run plays only the rounds left.
 	Rounds int
+	// Resume is the last round an earlier run of this fleet closed, as the
+	// durable decision log has it (0: none): this run's first round is
+	// Resume+1, so round numbers go on across coordinator restarts with no
+	// gap and no round numbered twice.
+	Resume uint64
 	// ReportWait bounds the wait for robots' reports after a round.
 	ReportWait time.Duration
 	// GatherWait: before round 1, once this long has passed since the run

@@ -44,17 +44,37 @@ type Config struct {
 	// DecisionLog receives one JSON line per round (Line); flushed per
 	// round when it has a Flush method.
 	DecisionLog io.Writer
-	Metrics     *Metrics
+	// Journal is the durable decision log (nil: none): each round's line
+	// is appended when the round closes, before its close is published,
+	// and again once its reports are filed.
+	Journal Journal
+	Metrics *Metrics
 	// OnRound is called after each round's reports are filed (progress).
 	OnRound func(clock.Record)
 }
 
 // Line is one decision-log line: the round's record and its wall-clock
-// start.
+// start. Kind is "closed" on the durable log's write-ahead records (the
+// round's decisions, before its reports) and empty on filed rounds.
 type Line struct {
 	clock.Record
 	StartedAt time.Time `json:"started_at"`
+	Kind      string    `json:"kind,omitempty"`
 }
+
+// Journal is where durable decision-log records go (shell.Journal).
+type Journal interface {
+	Append(ctx context.Context, kind string, epoch, round uint64, line []byte) error
+}
+
+// Journal appends are retried this often, each waiting this long, before
+// the round goes ahead without its record (counted and logged): the fleet
+// keeps deciding through a JetStream leader election, and the file log
+// still has the line.
+const (
+	JournalTries = 3
+	JournalWait  = 2 * time.Second
+)
 
 // Metrics are the coordinator's Prometheus series.
 type Metrics struct {
@@ -66,6 +86,7 @@ type Metrics struct {
 	Dropped      *prometheus.CounterVec
 	NATSErrors   *prometheus.CounterVec
 	OrderSize    prometheus.Gauge
+	JournalFails prometheus.Counter
 }
 
 // NewMetrics registers the series on reg (nil: a private registry).
@@ -80,6 +101,8 @@ func NewMetrics(reg prometheus.Registerer) *Metrics {
 		Dropped:    prometheus.NewCounterVec(prometheus.CounterOpts{Name: "baton_coordinator_dropped_total", Help: "Messages dropped unread, by reason."}, []string{"reason"}),
 		NATSErrors: prometheus.NewCounterVec(prometheus.CounterOpts{Name: "baton_nats_client_errors_total", Help: "Asynchronous NATS client errors, by kind (slow-consumer, permission, other)."}, []string{"kind"}),
 		OrderSize:  prometheus.NewGauge(prometheus.GaugeOpts{Name: "baton_order_size", Help: "Robots in the current round's order."}),
+		JournalFails: prometheus.NewCounter(prometheus.CounterOpts{Name: "baton_decision_log_stream_failures_total",
+			Help: "Decision-log records the durable stream did not take after every retry."}),
 	}
 	for _, r := range turn.Reasons() {
 		m.Dropped.WithLabelValues(string(r))
@@ -87,7 +110,7 @@ func NewMetrics(reg prometheus.Registerer) *Metrics {
 	if reg == nil {
 		reg = prometheus.NewRegistry()
 	}
-	reg.MustRegister(m.RoundLatency, m.Rounds, m.Held, m.Guessed, m.Late, m.Dropped, m.NATSErrors, m.OrderSize)
+	reg.MustRegister(m.RoundLatency, m.Rounds, m.Held, m.Guessed, m.Late, m.Dropped, m.NATSErrors, m.OrderSize, m.JournalFails)
 	return m
 }
 
@@ -231,6 +254,14 @@ func (h *Hub) apply(acts []clock.Action) (done bool, err error) {
 	// Messages first, in order: a round's latency runs from the moment the
 	// machine starts it, and writing the previous round's log line (often
 	// in the same batch) must not sit in between.
+	// A round's decisions reach the durable log before its close goes out:
+	// a successor coordinator then never numbers a round robots acted on
+	// a second time.
+	for _, a := range acts {
+		if c, ok := a.(clock.Closed); ok {
+			h.journal(Line{Record: c.Record, StartedAt: h.start.Add(c.Record.Start), Kind: shell.JournalClosed})
+		}
+	}
 	rest := acts[:0:0]
 	for _, a := range acts {
 		switch a.(type) {
@@ -321,6 +352,9 @@ func (h *Hub) publish(subject, what string, round uint64, encode func() ([]byte,
 // file writes a round's decision-log line, flushed, so a run that is
 // killed has written every round it completed.
 func (h *Hub) file(r clock.Record) {
+	if !r.Interrupted {
+		h.journal(Line{Record: r, StartedAt: h.start.Add(r.Start)})
+	}
 	if h.cfg.DecisionLog != nil {
 		line, err := json.Marshal(Line{Record: r, StartedAt: h.start.Add(r.Start)})
 		if err == nil {
@@ -336,4 +370,31 @@ func (h *Hub) file(r clock.Record) {
 	if h.cfg.OnRound != nil && !r.Interrupted {
 		h.cfg.OnRound(r)
 	}
+}
+
+// journal appends one record to the durable log, retrying; a record that
+// cannot be stored is logged and counted, and the fleet goes on.
+func (h *Hub) journal(l Line) {
+	if h.cfg.Journal == nil {
+		return
+	}
+	kind := l.Kind
+	if kind == "" {
+		kind = shell.JournalFiled
+	}
+	data, err := json.Marshal(l)
+	for try := 0; data != nil && try < JournalTries; try++ {
+		if try > 0 {
+			time.Sleep(time.Duration(try) * 100 * time.Millisecond) // a leader election takes a moment
+		}
+		ctx, cancel := context.WithTimeout(context.Background(), JournalWait)
+		err = h.cfg.Journal.Append(ctx, kind, l.Epoch, l.Round, data)
+		cancel()
+		if err == nil {
+			return
+		}
+	}
+	h.cfg.Metrics.JournalFails.Inc()
+	h.cfg.Log.Error("decision log stream did not take the round; it goes ahead (the file log, if any, has it)",
+		zap.Uint64("round", l.Round), zap.String("kind", kind), zap.Error(err))
 }

@@ -87,3 +87,109 @@ func TestHubInterruptedRound(t *testing.T) {
 		t.Fatalf("%+v", line)
 	}
 }
+
+// journalRec is a journal that remembers appends, checks that no close of
+// the round went out before its write-ahead record, and fails the first
+// fails appends.
+type journalRec struct {
+	mu     sync.Mutex
+	closes chan *nats.Msg
+	got    []string
+	early  []uint64 // rounds whose close was out before their record
+	fails  int
+}
+
+func (j *journalRec) Append(_ context.Context, kind string, epoch, round uint64, line []byte) error {
+	j.mu.Lock()
+	defer j.mu.Unlock()
+	if j.fails > 0 {
+		j.fails--
+		return context.DeadlineExceeded
+	}
+	if kind == shell.JournalClosed {
+		for range len(j.closes) {
+			c := <-j.closes
+			if cl, err := wire.Close(c.Data); err == nil && cl.Round == round {
+				j.early = append(j.early, round)
+			}
+		}
+	}
+	var l Line
+	if err := json.Unmarshal(line, &l); err != nil || l.Round != round || l.Epoch != epoch {
+		j.got = append(j.got, "bad record")
+	}
+	j.got = append(j.got, kind)
+	return nil
+}
+
+func (j *journalRec) appended() []string {
+	j.mu.Lock()
+	defer j.mu.Unlock()
+	return append([]string(nil), j.got...)
+}
+
+// A round's write-ahead record is in the durable log before its close goes
+// out, and its filed record after the reports; a failed append is retried,
+// and one that never succeeds is counted while the fleet goes on.
+func TestHubJournal(t *testing.T) {
+	for _, fails := range []int{1, 100} {
+		m, _ := harbor.Default(2)
+		subj, _ := pb.NewSubjects("baton", "yard")
+		bus := &shell.MemBus{}
+		cc := clock.DefaultConfig()
+		cc.Fleet, cc.Model, cc.Decide, cc.Epoch, cc.Rounds = "yard", m, decide.Config{Samples: 2, Horizon: 2}, 42, 1
+		cc.TurnBudget = time.Hour
+		j := &journalRec{closes: make(chan *nats.Msg, 64), fails: fails}
+		met := NewMetrics(nil)
+		h := New(Config{Clock: cc, Subjects: subj, Journal: j, Metrics: met}, bus)
+		starts := make(chan *nats.Msg, 8)
+		bus.ChanSubscribe(subj.Round, starts)
+		bus.ChanSubscribe(subj.Close, j.closes)
+		done := make(chan error)
+		go func() { done <- h.Run(context.Background()) }()
+		report := func(round uint64, epoch uint64) {
+			for r := range 2 {
+				data, _ := wire.EncodeReport(turn.Report{Fleet: "yard", Epoch: epoch, Round: round, Robot: uint32(r), Position: int32(r)})
+				bus.Publish(subj.ObsOf(r), data)
+			}
+		}
+		for len(starts) == 0 {
+			report(0, 0)
+			time.Sleep(10 * time.Millisecond)
+		}
+		for r := range 2 {
+			data, _ := wire.EncodeDecision(turn.Decision{Fleet: "yard", Epoch: 42, Round: 1, Robot: uint32(r), Control: 0})
+			bus.Publish(subj.DecisionOf(r), data)
+		}
+		deadline := time.Now().Add(10 * time.Second)
+		for {
+			report(1, 42)
+			select {
+			case err := <-done:
+				if err != nil {
+					t.Fatal(err)
+				}
+			case <-time.After(20 * time.Millisecond):
+				if time.Now().After(deadline) {
+					t.Fatalf("fails %d: the round never finished; journal %v", fails, j.appended())
+				}
+				continue
+			}
+			break
+		}
+		got := j.appended()
+		switch fails {
+		case 1:
+			if strings.Join(got, ",") != "closed,filed" || len(j.early) != 0 {
+				t.Fatalf("journal %v, closes out before their record: %v", got, j.early)
+			}
+			if n := testutil.ToFloat64(met.JournalFails); n != 0 {
+				t.Fatalf("a retried append counted as lost: %g", n)
+			}
+		default:
+			if len(got) != 0 || testutil.ToFloat64(met.JournalFails) != 2 {
+				t.Fatalf("journal %v, %g failures counted, want both records counted as lost", got, testutil.ToFloat64(met.JournalFails))
+			}
+		}
+	}
+}

@@ -52,6 +52,11 @@ func MainWith(args []string, hooks shell.Hooks) int {
 	cfg.RegisterSeed(fs)
 	embed := fs.Bool("embed-nats", false, "run an embedded NATS server in this process (nothing else to install)")
 	embedListen := fs.String("embed-listen", "127.0.0.1:4222", "address of the embedded NATS server")
+	embedStore := fs.String("embed-store", "", "directory for the embedded server's JetStream files, kept across restarts (default: a temporary one, removed on exit)")
+	logStream := fs.Bool("log-stream", true, "keep the durable decision log in a file-backed JetStream stream (<prefix>_<fleet>_log); needs JetStream on the server")
+	logReplicas := fs.Int("log-replicas", 1, "copies of the durable log a JetStream cluster keeps (1..5; 3 on a three-node cluster)")
+	logMB := fs.Int("log-max-mb", shell.DefaultJournalBytes>>20, "size of the durable log in MiB, reserved on the server; the oldest rounds go first beyond it")
+	resume := fs.Bool("resume", true, "continue the round numbering from the durable log (false: a new episode from round 1; the log tells runs apart by epoch)")
 	guessModel := fs.String("guess-model", "", "trained guess model file (sim train --out) to distribute to the robots through JetStream; watched for new versions")
 	logFile := fs.String("decision-log", "", "append one JSON line per round to this file")
 	httpAddr := fs.String("http", "127.0.0.1:7480", "healthz and metrics address")
@@ -98,7 +103,7 @@ func MainWith(args []string, hooks shell.Hooks) int {
 		if err != nil || port < 0 || port > 65535 {
 			return fail(fmt.Errorf("--embed-listen %q: bad port", *embedListen))
 		}
-		ns, u, err := shell.EmbeddedNATS(host, port)
+		ns, u, err := shell.EmbeddedNATSAt(host, port, *embedStore)
 		if err != nil {
 			return fail(err)
 		}
@@ -139,10 +144,37 @@ func MainWith(args []string, hooks shell.Hooks) int {
 		logW = bufio.NewWriter(f)
 		defer logW.Flush()
 	}
+	if *logReplicas < 1 || *logReplicas > 5 {
+		return fail(fmt.Errorf("--log-replicas %d: want 1..5", *logReplicas))
+	}
+	if *logMB < 1 || *logMB > 1<<20 {
+		return fail(fmt.Errorf("--log-max-mb %d: want 1..1048576", *logMB))
+	}
+	var journal *shell.Journal
+	if *logStream {
+		jctx, cancel := context.WithTimeout(context.Background(), 15*time.Second)
+		journal, err = shell.OpenJournal(jctx, nc, c.Prefix, c.Fleet, shell.JournalOptions{Replicas: *logReplicas, MaxBytes: int64(*logMB) << 20})
+		var epoch, last uint64
+		if err == nil && *resume {
+			epoch, last, err = journal.LastClosed(jctx)
+		}
+		cancel()
+		if err != nil {
+			return fail(fmt.Errorf("--log-stream: %w (--log-stream=false keeps only --decision-log)", err))
+		}
+		cfg.Resume = last
+		if last > 0 {
+			lg.Info("continuing the fleet's rounds from the durable log", zap.Uint64("last_closed_round", last),
+				zap.Uint64("by_epoch", epoch), zap.String("stream", shell.JournalStream(c.Prefix, c.Fleet)))
+		}
+	}
 	hcfg := hub.Config{Clock: cfg, Subjects: fl.Subjects, Alive: func() []int { return shell.AliveRobots(ml, c.Fleet) },
 		Log: lg, Metrics: met}
 	if logW != nil {
 		hcfg.DecisionLog = logW
+	}
+	if journal != nil {
+		hcfg.Journal = journal
 	}
 	ctx, stop := signal.NotifyContext(context.Background(), os.Interrupt, syscall.SIGTERM)
 	defer stop()

@@ -108,21 +108,31 @@ func Connect(urls, creds, name string, timeout time.Duration, lg *zap.Logger, ex
 // Embedded is a NATS server running in this process.
 type Embedded struct {
 	*server.Server
-	dir string
+	dir string // removed at Shutdown ("": kept)
 }
 
-// Shutdown stops the server and removes its JetStream files.
+// Shutdown stops the server and removes its JetStream files unless they
+// were kept in a directory of the caller's.
 func (e *Embedded) Shutdown() {
 	e.Server.Shutdown()
 	e.Server.WaitForShutdown()
-	os.RemoveAll(e.dir)
+	if e.dir != "" {
+		os.RemoveAll(e.dir)
+	}
 }
 
 // EmbeddedNATS starts a NATS server in this process on host:port (port 0:
 // a free one) and returns it with its client URL. JetStream is on (for the
-// guess-model store), keeping its files in a temporary directory that
-// Shutdown removes.
+// guess models and the durable decision log), keeping its files in a
+// temporary directory that Shutdown removes.
 func EmbeddedNATS(host string, port int) (*Embedded, string, error) {
+	return EmbeddedNATSAt(host, port, "")
+}
+
+// EmbeddedNATSAt is EmbeddedNATS with JetStream's files in storeDir, which
+// outlives the server (a server started again on it has the same streams);
+// "" is a temporary directory.
+func EmbeddedNATSAt(host string, port int, storeDir string) (*Embedded, string, error) {
 	if port == 0 {
 		port = server.RANDOM_PORT
 	}
@@ -135,22 +145,33 @@ func EmbeddedNATS(host string, port int) (*Embedded, string, error) {
 		}
 		l.Close()
 	}
-	dir, err := os.MkdirTemp("", "baton-nats-")
-	if err != nil {
-		return nil, "", err
+	dir, remove := storeDir, ""
+	if dir == "" {
+		var err error
+		if dir, err = os.MkdirTemp("", "baton-nats-"); err != nil {
+			return nil, "", err
+		}
+		remove = dir
+	} else if err := os.MkdirAll(dir, 0o700); err != nil {
+		return nil, "", fmt.Errorf("embedded NATS store: %w", err)
 	}
 	ns, err := server.NewServer(&server.Options{Host: host, Port: port, NoSigs: true, NoLog: true, MaxPayload: 8 << 20,
-		JetStream: true, StoreDir: dir, JetStreamMaxMemory: 64 << 20, JetStreamMaxStore: 256 << 20})
+		JetStream: true, StoreDir: dir, JetStreamMaxMemory: 64 << 20, JetStreamMaxStore: 1 << 30})
 	if err != nil {
+		if remove != "" {
+			os.RemoveAll(remove)
+		}
 		return nil, "", fmt.Errorf("embedded NATS: %w", err)
 	}
 	go ns.Start()
 	if !ns.ReadyForConnections(10 * time.Second) {
 		ns.Shutdown()
-		os.RemoveAll(dir)
+		if remove != "" {
+			os.RemoveAll(remove)
+		}
 		return nil, "", fmt.Errorf("embedded NATS on %s:%d did not start within 10s", host, port)
 	}
-	return &Embedded{Server: ns, dir: dir}, ns.ClientURL(), nil
+	return &Embedded{Server: ns, dir: remove}, ns.ClientURL(), nil
 }
 
 // GossipConfig is memberlist tuned for robots on a lossy radio: a crash is

@@ -63,6 +63,9 @@ type Summary struct {
 	AgentdMaxRSS  int64   `json:"agentd_max_rss_kb,omitempty"`
 	DecisionLog   string  `json:"decision_log,omitempty"`
 	ProcessLogDir string  `json:"process_logs,omitempty"`
+	// DurableLog is the coordinator's durable decision log (the JetStream
+	// stream) exported to a file when the run ended: `sim replay --file`.
+	DurableLog string `json:"durable_log_export,omitempty"`
 }
 
 // Tally accumulates rounds into a summary.
