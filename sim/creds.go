@@ -13,7 +13,9 @@ import (
 func cmdCreds(args []string) error {
 	fs := newFlags("creds", `Makes a fleet's NATS identities: an nkey per process (coordinator.nk,
 robot-<r>.nk; pass each with --creds) and the server's authorization block
-(authorization.conf; include it in the NATS server configuration). Each
+(authorization.conf; include it in the NATS server configuration), and
+for each robot host's leaf node its identity (robot-<r>.leaf.conf; install
+it as leaf-identity.conf next to deploy/nats/leaf-robot.conf). Each
 robot may publish only its own decisions and observations, the
 coordinator only round starts, closes, report requests and guess models.
 
@@ -48,5 +50,6 @@ coordinator only round starts, closes, report requests and guess models.
 	fmt.Printf("wrote %d identities and authorization.conf to %s\n", len(ids), *out)
 	fmt.Printf("NATS server: include %s in its configuration\n", filepath.Join(*out, "authorization.conf"))
 	fmt.Printf("coordinator: --creds %s;  agentd --robot R: --creds %s\n", filepath.Join(*out, "coordinator.nk"), filepath.Join(*out, "robot-R.nk"))
+	fmt.Printf("a leaf node on robot R's host: %s as leaf-identity.conf\n", filepath.Join(*out, "robot-R.leaf.conf"))
 	return nil
 }

@@ -16,7 +16,10 @@ import (
 )
 
 // The shipped NATS cluster configurations load (with the authorization
-// block sim creds writes) and route to the other two nodes.
+// block sim creds writes), route to the other two nodes and take robots'
+// leaf nodes in the JetStream domain the leaf template maps to; the
+// shipped leaf template loads with a robot's leaf identity from sim creds.
+// (deploy/shell's TestLeafNodeOnRobot runs them.)
 func TestDeployNATSConfigs(t *testing.T) {
 	files, _ := filepath.Glob("../deploy/nats/node-*.conf")
 	if len(files) != 3 {
@@ -45,6 +48,40 @@ func TestDeployNATSConfigs(t *testing.T) {
 		if len(opts.Routes) != 2 || !opts.JetStream || len(opts.Nkeys) != 3 || opts.Cluster.Name != "baton" {
 			t.Fatalf("%s: %d routes, jetstream %v, %d users, cluster %q", f, len(opts.Routes), opts.JetStream, len(opts.Nkeys), opts.Cluster.Name)
 		}
+		if opts.LeafNode.Port != 7422 || opts.JetStreamDomain != shell.HubDomain {
+			t.Fatalf("%s: leaf node port %d, JetStream domain %q (want 7422, %q)", f, opts.LeafNode.Port, opts.JetStreamDomain, shell.HubDomain)
+		}
+	}
+
+	dir := t.TempDir()
+	if err := shell.WriteFleetCredentials(dir, ids); err != nil {
+		t.Fatal(err)
+	}
+	identity, err := os.ReadFile(filepath.Join(dir, "robot-1.leaf.conf"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	os.WriteFile(filepath.Join(dir, "leaf-identity.conf"), identity, 0o600)
+	data, err := os.ReadFile("../deploy/nats/leaf-robot.conf")
+	if err != nil {
+		t.Fatal(err)
+	}
+	path := filepath.Join(dir, "leaf-robot.conf")
+	os.WriteFile(path, data, 0o600)
+	opts, err := server.ProcessConfigFile(path)
+	if err != nil {
+		t.Fatalf("leaf-robot.conf: %v", err)
+	}
+	if opts.Host != "127.0.0.1" || opts.Port != 4222 || opts.JetStream || len(opts.Nkeys) != 1 || opts.Nkeys[0].Nkey != ids[2].Public ||
+		len(opts.LeafNode.Remotes) != 1 || opts.LeafNode.Remotes[0].Nkey != string(ids[2].Seed) {
+		t.Fatalf("leaf-robot.conf: listens on %s:%d, jetstream %v, %d local users, remotes %+v", opts.Host, opts.Port, opts.JetStream, len(opts.Nkeys), opts.LeafNode.Remotes)
+	}
+	var urls []string
+	for _, u := range opts.LeafNode.Remotes[0].URLs {
+		urls = append(urls, u.String())
+	}
+	if strings.Join(urls, " ") != "nats-leaf://nats-a:7422 nats-leaf://nats-b:7422 nats-leaf://nats-c:7422" {
+		t.Fatalf("leaf-robot.conf: the leaf connects to %v, want all three cluster nodes on 7422", urls)
 	}
 }
 
