@@ -70,12 +70,16 @@ type benchReport struct {
 }
 
 func cmdBench(args []string) error {
+	const benchUsage = "usage: sim bench rounds|security [flags]   (run 'sim bench rounds -h' for the flags)"
+	if len(args) > 0 && args[0] == "security" {
+		return cmdBenchSecurity(args[1:])
+	}
 	if len(args) == 0 || args[0] != "rounds" {
 		if len(args) > 0 && (args[0] == "-h" || args[0] == "-help" || args[0] == "--help") {
-			fmt.Println("usage: sim bench rounds [flags]   (run 'sim bench rounds -h' for the flags)")
+			fmt.Println(benchUsage)
 			return nil
 		}
-		return fmt.Errorf("usage: sim bench rounds [flags] (the only benchmark so far)")
+		return fmt.Errorf("%s", benchUsage)
 	}
 	fs := newFlags("bench rounds", "Measures, in one run on one embedded NATS server, the publish-to-receive hop and\nthe latency of sequential and parallel rounds of real robot daemons (in-process,\none NATS connection each) with the rollout compute stubbed to a fixed cost.\n\nround_us runs from robot 0 accepting the round start to the coordinator\nreceiving the last decision: the chain of m turns, m hops. from_publish_us\nadds the round start's own hop. overhead_ratio = (round_us - m*compute) / (m*hop)\nfor sequential rounds, (round_us - compute) / hop for parallel ones.")
 	robotsFlag := fs.String("robots", "2,4,8,16", "fleet sizes to measure")

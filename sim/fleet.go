@@ -22,6 +22,7 @@ import (
 	"syscall"
 	"time"
 
+	"github.com/nats-io/nats-server/v2/server"
 	"github.com/nats-io/nats.go"
 
 	"baton/agentd/node"
@@ -80,6 +81,8 @@ type fleetOpts struct {
 	link        vfleet.Link
 	turnTime    time.Duration
 	virtualOnly []string // virtual-only flags given on the command line
+	// secure: per-process NATS identities and TLS, as on a site.
+	secure bool
 }
 
 // fleetRun is a running fleet: processes, the embedded NATS server and the
@@ -107,6 +110,7 @@ type fleetRun struct {
 	coordArgs []string
 	oldRuns   []string // the run each robot followed before a coordinator restart
 	store     string   // the embedded server's JetStream files, kept across its restarts
+	sec       *secureFleet
 }
 
 func startFleet(ctx context.Context, o fleetOpts) (*fleetRun, error) {
@@ -128,7 +132,13 @@ func startFleet(ctx context.Context, o fleetOpts) (*fleetRun, error) {
 	if f.store, err = os.MkdirTemp("", "baton-fleet-nats-"); err != nil {
 		return nil, err
 	}
-	f.ns, f.url, err = shell.EmbeddedNATSAt("127.0.0.1", 0, f.store)
+	if o.secure {
+		if f.sec, err = makeSecure(filepath.Join(o.logDir, "secure"), o.prefix, o.fleet, m.Robots()); err != nil {
+			os.RemoveAll(f.store)
+			return nil, err
+		}
+	}
+	f.ns, f.url, err = shell.EmbeddedNATSWith("127.0.0.1", 0, f.store, f.setSecure)
 	if err != nil {
 		os.RemoveAll(f.store)
 		return nil, err
@@ -168,6 +178,7 @@ func startFleet(ctx context.Context, o fleetOpts) (*fleetRun, error) {
 		f.common = append(f.common, "--drill-faults", f.planFile)
 	}
 	coordArgs := append([]string{"coordinator", "--nats", f.url}, f.common...)
+	coordArgs = append(coordArgs, f.identity("coordinator")...)
 	cc := o.clock
 	cc.Seed = episode.FleetSeed(epSeed)
 	coordArgs = append(coordArgs, cc.Args()...)
@@ -206,13 +217,37 @@ func startFleet(ctx context.Context, o fleetOpts) (*fleetRun, error) {
 
 func (f *fleetRun) decisionLog() string { return filepath.Join(f.o.logDir, "decisions.jsonl") }
 
+// setSecure gives the embedded server the fleet's authorization and TLS
+// (--secure; nothing otherwise).
+func (f *fleetRun) setSecure(o *server.Options) {
+	if f.sec != nil {
+		f.sec.set(o)
+	}
+}
+
+// identity is a daemon's credential flags (--secure; none otherwise).
+func (f *fleetRun) identity(name string) []string {
+	if f.sec == nil {
+		return nil
+	}
+	return f.sec.args(name)
+}
+
+// connect is the simulator's own connection to the fleet's server.
+func (f *fleetRun) connect() (*nats.Conn, error) {
+	if f.sec != nil {
+		return f.sec.connect(f.url)
+	}
+	return nats.Connect(f.url)
+}
+
 // durableLog is where the durable log's export goes.
 func (f *fleetRun) durableLog() string { return filepath.Join(f.o.logDir, "decisions-stream.jsonl") }
 
 // replay reads the coordinator's durable log from the embedded server,
 // writes it to durableLog, and puts the episode back together.
 func (f *fleetRun) replay() (replayResult, error) {
-	nc, err := nats.Connect(f.url)
+	nc, err := f.connect()
 	if err != nil {
 		return replayResult{}, err
 	}
@@ -281,6 +316,7 @@ func (f *fleetRun) startRobot(r int) error {
 	port := strings.TrimPrefix(f.bases[r], "http://")
 	args := append([]string{"agentd", "--nats", f.robotURL}, f.common...)
 	args = append(args, "--robot", strconv.Itoa(r), "--http", port, "--join", f.gossip)
+	args = append(args, f.identity(fmt.Sprintf("robot-%d", r))...)
 	p, err := f.spawn(fmt.Sprintf("agentd-%d", r), args)
 	f.robots[r] = p
 	return err
@@ -499,7 +535,7 @@ func (f *fleetRun) restartNATS(down time.Duration) error {
 	port, _ := strconv.Atoi(portStr)
 	var lastErr error
 	for range 50 { // the old listener may linger a moment
-		if f.ns, _, lastErr = shell.EmbeddedNATSAt(host, port, f.store); lastErr == nil {
+		if f.ns, _, lastErr = shell.EmbeddedNATSWith(host, port, f.store, f.setSecure); lastErr == nil {
 			return nil
 		}
 		time.Sleep(100 * time.Millisecond)
@@ -531,6 +567,9 @@ func (o fleetOpts) check(m model.Model) (model.Fleet, error) {
 		if r >= m.Robots() {
 			return nil, fmt.Errorf("--slow %d=...: the fleet has robots 0..%d", r, m.Robots()-1)
 		}
+	}
+	if o.virtual && o.secure {
+		return nil, errors.New("--secure is for fleets of processes over NATS; the virtual fleet has no server")
 	}
 	if !o.virtual && len(o.virtualOnly) > 0 {
 		return nil, fmt.Errorf("--%s models the virtual fleet's links or compute: add --virtual", o.virtualOnly[0])
@@ -577,6 +616,7 @@ exactly what the real fleet decides for the same flags: compare decisions_sha256
 	fs.Var(o.slow, "slow", "fault injection: ROBOT=DELAY holds back that robot's decisions (repeatable)")
 	fs.StringVar(&o.guessModel, "guess-model", "", "model file from sim train, distributed to the robots (for --guess learned)")
 	fs.BoolVar(&o.virtual, "virtual", false, "run the fleet in one process in virtual time instead of as processes over NATS")
+	fs.BoolVar(&o.secure, "secure", false, "as on a site: an nkey and publish permissions per process (as sim creds makes them) and TLS to the NATS server (a throwaway CA, in the logs directory)")
 	fs.DurationVar(&o.link.Hop, "hop", o.link.Hop, "virtual: one-way delay of every delivery on the in-memory bus")
 	fs.DurationVar(&o.link.Jitter, "jitter", 0, "virtual: plus a uniform random delay in [0, jitter)")
 	fs.Float64Var(&o.link.Loss, "loss", 0, "virtual: probability that a delivery is lost")

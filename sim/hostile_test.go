@@ -298,3 +298,30 @@ func TestSecondDaemonForALiveRobot(t *testing.T) {
 		t.Fatalf("round 2 after the refused daemon: %d held", res.Held)
 	}
 }
+
+// A whole fleet runs as on a site (--secure): every process with its own
+// nkey and permissions, TLS to the server. The rounds go as without, and a
+// client without credentials, or without TLS, cannot connect.
+func TestSecureFleet(t *testing.T) {
+	o := opts("harbor", 3, 200, 4, nil)
+	o.secure = true
+	f := testFleet(t, o)
+	for r := 1; r <= 3; r++ {
+		if res := f.play(r); res.Held != 0 {
+			t.Fatalf("round %d: %d held", r, res.Held)
+		}
+	}
+	if nc, err := nats.Connect(f.url, nats.RootCAs(f.sec.pki.CA), nats.MaxReconnects(0)); err == nil {
+		nc.Close()
+		t.Fatal("a client without credentials connected")
+	}
+	if nc, err := nats.Connect(f.url, nats.MaxReconnects(0)); err == nil {
+		nc.Close()
+		t.Fatal("a client without TLS or credentials connected")
+	}
+	record(t, f, 3)
+	res, err := f.replay()
+	if err != nil || res.Rounds < 3 || !res.Continuous() {
+		t.Fatalf("durable log under permissions: %v %s", err, res.Summary())
+	}
+}

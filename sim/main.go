@@ -22,7 +22,8 @@ commands:
   compare   base vs all-at-once vs one-at-a-time rollout on seeded episodes
   exact     exact costs of optimal, base and both rollouts on a tiny instance
   fleet     a whole fleet on this machine: embedded NATS, coordinator, one agentd per robot
-  bench     bench rounds: hop and round latency against the physics
+  bench     bench rounds: hop and round latency against the physics;
+            bench security: round latency with and without TLS and per-process permissions
   soak      a process fleet for many rounds under loss: goroutines, heap, fds, log size
   creds     a fleet's NATS identities (nkeys) and the server's permissions
   replay    rebuild an episode from a decision log (durable stream or file), recompute its cost

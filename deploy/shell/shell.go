@@ -133,6 +133,12 @@ func EmbeddedNATS(host string, port int) (*Embedded, string, error) {
 // outlives the server (a server started again on it has the same streams);
 // "" is a temporary directory.
 func EmbeddedNATSAt(host string, port int, storeDir string) (*Embedded, string, error) {
+	return EmbeddedNATSWith(host, port, storeDir, nil)
+}
+
+// EmbeddedNATSWith is EmbeddedNATSAt with set applied to the server's
+// options last (authorization, TLS).
+func EmbeddedNATSWith(host string, port int, storeDir string, set func(*server.Options)) (*Embedded, string, error) {
 	if port == 0 {
 		port = server.RANDOM_PORT
 	}
@@ -155,8 +161,12 @@ func EmbeddedNATSAt(host string, port int, storeDir string) (*Embedded, string, 
 	} else if err := os.MkdirAll(dir, 0o700); err != nil {
 		return nil, "", fmt.Errorf("embedded NATS store: %w", err)
 	}
-	ns, err := server.NewServer(&server.Options{Host: host, Port: port, NoSigs: true, NoLog: true, MaxPayload: 8 << 20,
-		JetStream: true, StoreDir: dir, JetStreamMaxMemory: 64 << 20, JetStreamMaxStore: 1 << 30})
+	opts := &server.Options{Host: host, Port: port, NoSigs: true, NoLog: true, MaxPayload: 8 << 20,
+		JetStream: true, StoreDir: dir, JetStreamMaxMemory: 64 << 20, JetStreamMaxStore: 1 << 30}
+	if set != nil {
+		set(opts)
+	}
+	ns, err := server.NewServer(opts)
 	if err != nil {
 		if remove != "" {
 			os.RemoveAll(remove)

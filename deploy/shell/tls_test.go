@@ -1,16 +1,6 @@
 package shell
 
 import (
-	"crypto/ecdsa"
-	"crypto/elliptic"
-	"crypto/rand"
-	"crypto/x509"
-	"crypto/x509/pkix"
-	"encoding/pem"
-	"math/big"
-	"net"
-	"os"
-	"path/filepath"
 	"testing"
 	"time"
 
@@ -20,41 +10,14 @@ import (
 )
 
 // testPKI makes, at test time, a CA and a certificate it signs for
-// 127.0.0.1, written as PEM files into dir: name.pem and name-key.pem.
+// 127.0.0.1, written as PEM files into dir.
 func testPKI(t *testing.T, dir string) (ca, srvCert, srvKey, cliCert, cliKey string) {
 	t.Helper()
-	caKey, _ := ecdsa.GenerateKey(elliptic.P256(), rand.Reader)
-	caTmpl := &x509.Certificate{SerialNumber: big.NewInt(1), Subject: pkix.Name{CommonName: "baton test CA"},
-		NotBefore: time.Now().Add(-time.Hour), NotAfter: time.Now().Add(time.Hour), IsCA: true, BasicConstraintsValid: true,
-		KeyUsage: x509.KeyUsageCertSign}
-	caDER, err := x509.CreateCertificate(rand.Reader, caTmpl, caTmpl, &caKey.PublicKey, caKey)
+	p, err := MakePKI(dir, []string{"127.0.0.1"}, time.Hour)
 	if err != nil {
 		t.Fatal(err)
 	}
-	caCert, _ := x509.ParseCertificate(caDER)
-	write := func(name, kind string, der []byte) string {
-		p := filepath.Join(dir, name)
-		if err := os.WriteFile(p, pem.EncodeToMemory(&pem.Block{Type: kind, Bytes: der}), 0o600); err != nil {
-			t.Fatal(err)
-		}
-		return p
-	}
-	leaf := func(name string, serial int64, usage x509.ExtKeyUsage) (string, string) {
-		k, _ := ecdsa.GenerateKey(elliptic.P256(), rand.Reader)
-		tmpl := &x509.Certificate{SerialNumber: big.NewInt(serial), Subject: pkix.Name{CommonName: name},
-			NotBefore: time.Now().Add(-time.Hour), NotAfter: time.Now().Add(time.Hour), IPAddresses: []net.IP{net.ParseIP("127.0.0.1")},
-			KeyUsage: x509.KeyUsageDigitalSignature, ExtKeyUsage: []x509.ExtKeyUsage{usage}}
-		der, err := x509.CreateCertificate(rand.Reader, tmpl, caCert, &k.PublicKey, caKey)
-		if err != nil {
-			t.Fatal(err)
-		}
-		kder, _ := x509.MarshalECPrivateKey(k)
-		return write(name+".pem", "CERTIFICATE", der), write(name+"-key.pem", "EC PRIVATE KEY", kder)
-	}
-	ca = write("ca.pem", "CERTIFICATE", caDER)
-	srvCert, srvKey = leaf("server", 2, x509.ExtKeyUsageServerAuth)
-	cliCert, cliKey = leaf("client", 3, x509.ExtKeyUsageClientAuth)
-	return
+	return p.CA, p.ServerCert, p.ServerKey, p.ClientCert, p.ClientKey
 }
 
 // With TLS on at the server (client certificates verified), the daemons'
