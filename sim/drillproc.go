@@ -136,14 +136,21 @@ func (p *processRunner) play(ctx context.Context, f *fleetRun, rounds int, procs
 					note("round %d: robot %d killed (SIGKILL), back after %s", r, id, s.Down)
 				}
 			case fault.KillCoordinator:
-				note("round %d: coordinator killed (SIGKILL), back after %s", r, s.Down)
-				if err := f.restartCoordinator(ctx, s.Down); err != nil {
-					return ep, fmt.Errorf("restarting the coordinator: %w", err)
+				// Killed mid-round: the robots' software has the round's
+				// decisions, the coordinator dies waiting for the reports
+				// (which then go to its successor).
+				down := s.Down
+				f.beforeReport = func() error {
+					note("round %d: decisions read; coordinator killed (SIGKILL) before the reports, back after %s", r, down)
+					if err := f.restartCoordinator(ctx, down); err != nil {
+						return fmt.Errorf("restarting the coordinator: %w", err)
+					}
+					if err := f.waitNewRun(30 * time.Second); err != nil {
+						return err
+					}
+					note("round %d: coordinator back; its run continues the rounds from the durable log", r)
+					return nil
 				}
-				if err := f.waitNewRun(30 * time.Second); err != nil {
-					return ep, err
-				}
-				note("round %d: coordinator back; its run continues the rounds from the durable log", r)
 			case fault.KillNATS:
 				note("round %d: NATS server stopped, back after %s", r, s.Down)
 				if err := f.restartNATS(s.Down); err != nil {
@@ -159,6 +166,9 @@ func (p *processRunner) play(ctx context.Context, f *fleetRun, rounds int, procs
 			}
 		}
 		res := f.play(r)
+		if f.hookErr != nil {
+			return ep, f.hookErr
+		}
 		for i, u := range res.Decided {
 			if u >= 0 && slices.ContainsFunc(dead, func(x down) bool { return x.robot == i }) {
 				return ep, fmt.Errorf("round %d: robot %d is dead but decided", r, i)

@@ -111,6 +111,11 @@ type fleetRun struct {
 	oldRuns   []string // the run each robot followed before a coordinator restart
 	store     string   // the embedded server's JetStream files, kept across its restarts
 	sec       *secureFleet
+	// beforeReport, when set, runs once in the next round between reading
+	// the decisions and reporting (a drill's mid-round fault); hookErr is
+	// what it returned.
+	beforeReport func() error
+	hookErr      error
 }
 
 func startFleet(ctx context.Context, o fleetOpts) (*fleetRun, error) {
@@ -483,6 +488,10 @@ func (f *fleetRun) play(round int) fleetsum.Round {
 	}
 	f.u = res.Controls()
 	res.Cost = f.world.Apply(f.u)
+	if hook := f.beforeReport; hook != nil {
+		f.beforeReport = nil
+		f.hookErr = hook()
+	}
 	f.report(round)
 	return res
 }
