@@ -116,6 +116,7 @@ type fleetRun struct {
 	// what it returned.
 	beforeReport func() error
 	hookErr      error
+	nc           *nats.Conn // the simulator's own connection (soak samples), made when first needed
 }
 
 func startFleet(ctx context.Context, o fleetOpts) (*fleetRun, error) {
@@ -497,6 +498,9 @@ func (f *fleetRun) play(round int) fleetsum.Round {
 }
 
 func (f *fleetRun) close() {
+	if f.nc != nil {
+		f.nc.Close()
+	}
 	procs := append([]*proc{f.coord}, f.robots...)
 	stopAll(procs)
 	if f.tcp != nil {

@@ -16,6 +16,7 @@ import (
 
 	"baton/agentd/decide"
 	"baton/coordinator/clock"
+	"baton/deploy/shell"
 	"baton/sim/fault"
 )
 
@@ -27,6 +28,8 @@ type soakSample struct {
 	HeapMB     float64 `json:"max_heap_mb"`
 	FDs        float64 `json:"max_open_fds"`
 	LogKB      float64 `json:"decision_log_kb"`
+	StreamKB   float64 `json:"durable_log_kb"` // the JetStream stream
+	Records    uint64  `json:"durable_log_records"`
 	Held       int     `json:"held_so_far"`
 }
 
@@ -67,6 +70,16 @@ func (f *fleetRun) sample(round int, t0 time.Time, held int) soakSample {
 	if fi, err := os.Stat(f.decisionLog()); err == nil {
 		s.LogKB = float64(fi.Size()) / 1024
 	}
+	if f.nc == nil {
+		f.nc, _ = f.connect()
+	}
+	if f.nc != nil {
+		ctx, cancel := context.WithTimeout(context.Background(), 5*time.Second)
+		if b, n, err := shell.JournalSize(ctx, f.nc, f.o.prefix, f.o.fleet); err == nil {
+			s.StreamKB, s.Records = float64(b)/1024, n
+		}
+		cancel()
+	}
 	return s
 }
 
@@ -103,7 +116,8 @@ func cmdSoak(args []string) error {
 	fs := newFlags("soak", `Runs a whole fleet of real processes (embedded NATS, coordinator, one agentd
 per robot) for many rounds under 10% message loss, and prints, over time,
 the daemons' goroutines, heap and open file descriptors (the largest of
-any daemon) and the decision log's size: what a long run leaks, if anything.`)
+any daemon) and the decision log's size, as a file and as the durable JetStream
+stream: what a long run leaks, if anything.`)
 	var o fleetOpts
 	o.sc.register(fs)
 	rounds := fs.Int("rounds", 10000, "rounds to run")
@@ -133,11 +147,11 @@ any daemon) and the decision log's size: what a long run leaks, if anything.`)
 	ctx, stop := signal.NotifyContext(context.Background(), os.Interrupt, syscall.SIGTERM)
 	defer stop()
 	if !*asJSON {
-		fmt.Printf("%7s %8s %11s %8s %7s %9s %6s\n", "round", "seconds", "goroutines", "heap MB", "fds", "log kB", "held")
+		fmt.Printf("%7s %8s %11s %8s %7s %9s %10s %6s\n", "round", "seconds", "goroutines", "heap MB", "fds", "log kB", "stream kB", "held")
 	}
 	samples, err := soak(ctx, o, *rounds, *every, func(s soakSample) {
 		if !*asJSON {
-			fmt.Printf("%7d %8.1f %11.0f %8.1f %7.0f %9.0f %6d\n", s.Round, s.Seconds, s.Goroutines, s.HeapMB, s.FDs, s.LogKB, s.Held)
+			fmt.Printf("%7d %8.1f %11.0f %8.1f %7.0f %9.0f %10.0f %6d\n", s.Round, s.Seconds, s.Goroutines, s.HeapMB, s.FDs, s.LogKB, s.StreamKB, s.Held)
 		}
 	})
 	if *asJSON && samples != nil {

@@ -199,3 +199,20 @@ func ReadJournal(ctx context.Context, nc *nats.Conn, prefix, fleet string, fn fu
 		}
 	}
 }
+
+// JournalSize is what a fleet's stream holds: bytes and records.
+func JournalSize(ctx context.Context, nc *nats.Conn, prefix, fleet string) (bytes, records uint64, err error) {
+	js, err := jetstream.New(nc)
+	if err != nil {
+		return 0, 0, err
+	}
+	st, err := js.Stream(ctx, JournalStream(prefix, fleet))
+	if err != nil {
+		return 0, 0, err
+	}
+	info, err := st.Info(ctx)
+	if err != nil {
+		return 0, 0, err
+	}
+	return info.State.Bytes, info.State.Msgs, nil
+}
