@@ -124,6 +124,7 @@ func (p *processRunner) play(ctx context.Context, f *fleetRun, rounds int, procs
 				i--
 			}
 		}
+		restarted := false // the coordinator, mid-round
 		for _, s := range procs {
 			if s.From != r {
 				continue
@@ -145,10 +146,7 @@ func (p *processRunner) play(ctx context.Context, f *fleetRun, rounds int, procs
 					if err := f.restartCoordinator(ctx, down); err != nil {
 						return fmt.Errorf("restarting the coordinator: %w", err)
 					}
-					if err := f.waitNewRun(30 * time.Second); err != nil {
-						return err
-					}
-					note("round %d: coordinator back; its run continues the rounds from the durable log", r)
+					restarted = true
 					return nil
 				}
 			case fault.KillNATS:
@@ -168,6 +166,14 @@ func (p *processRunner) play(ctx context.Context, f *fleetRun, rounds int, procs
 		res := f.play(r)
 		if f.hookErr != nil {
 			return ep, f.hookErr
+		}
+		if restarted {
+			// The reports of round r went to the new coordinator, which
+			// waits for them before its first round.
+			if err := f.waitNewRun(30 * time.Second); err != nil {
+				return ep, err
+			}
+			note("round %d: coordinator back; its run continues the rounds from the durable log", r)
 		}
 		for i, u := range res.Decided {
 			if u >= 0 && slices.ContainsFunc(dead, func(x down) bool { return x.robot == i }) {

@@ -135,55 +135,71 @@ func TestHostileMessages(t *testing.T) {
 	}
 }
 
-// A coordinator SIGKILLed mid-run and started again: the robots follow the
-// new run at once; it continues the round numbering from the durable log
-// (no round lost, none numbered twice); its first round has every robot at
-// the position it reported; and the log tells the two runs apart.
+// A coordinator SIGKILLed mid-round (the robots' software has round 4's
+// decisions and carried them out; the reports are not in) and started
+// again: the robots follow the new run at once; it continues the numbering
+// from the durable log (round 5: no round lost, none numbered twice); its
+// first round has every robot where it reported after round 4; the log
+// tells the runs apart; and replaying the log reproduces the cost the
+// world charged.
 func TestFleetCoordinatorKilled(t *testing.T) {
 	f := testFleet(t, opts("harbor", 3, 200, 4, nil))
-	for r := 1; r <= 3; r++ {
-		if res := f.play(r); res.Held != 0 {
+	var cost float64
+	play := func(r int) {
+		t.Helper()
+		res := f.play(r)
+		if f.hookErr != nil {
+			t.Fatal(f.hookErr)
+		}
+		if res.Held != 0 {
 			t.Fatalf("round %d: %d held", r, res.Held)
 		}
+		cost += res.Cost
+	}
+	for r := 1; r <= 3; r++ {
+		play(r)
 	}
 	old := record(t, f, 3)
 	ctx, cancel := context.WithTimeout(context.Background(), 45*time.Second)
 	defer cancel()
-	// Down long enough for gossip to declare it dead everywhere. Round 4
-	// is in play when it dies (closed and waiting for reports, or not).
-	if err := f.restartCoordinator(ctx, 3*time.Second); err != nil {
-		t.Fatal(err)
-	}
+	// Down long enough for gossip to declare it dead everywhere.
+	f.beforeReport = func() error { return f.restartCoordinator(ctx, 3*time.Second) }
+	play(4)
 	waitNewRun(t, f)
-	// Where the robots are: what they reported after round 3 (the world
+	// Where the robots are: what they reported after round 4 (the world
 	// has not moved since).
 	reported := make([]int32, f.m.Robots())
 	for r := range reported {
 		reported[r], _ = f.world.Report(r)
 	}
-	first := roundOf(t, f, 0)
-	if first != 4 && first != 5 {
-		t.Fatalf("the new run started at round %d; the old one had closed round 3 and maybe 4", first)
+	if first := roundOf(t, f, 0); first != 5 {
+		t.Fatalf("the new run started at round %d; the old one had closed round 4", first)
 	}
-	for r := first; r < first+3; r++ {
-		if res := f.play(r); res.Held != 0 {
-			t.Fatalf("round %d (the new run's): %d robots held", r, res.Held)
-		}
+	for r := 5; r <= 7; r++ {
+		play(r)
 	}
-	rec := record(t, f, first)
+	rec := record(t, f, 5)
 	if rec.Epoch <= old.Epoch {
-		t.Fatalf("round %d logged by run %d, not a newer run than %d", first, rec.Epoch, old.Epoch)
+		t.Fatalf("round 5 logged by run %d, not a newer run than %d", rec.Epoch, old.Epoch)
 	}
+	record(t, f, 7)
 	res, err := f.replay()
 	if err != nil {
 		t.Fatal(err)
 	}
-	if !res.Continuous() || len(res.Runs) != 2 || res.Runs[0].Epoch != old.Epoch || res.Runs[1].First != uint64(first) ||
-		res.Runs[0].Last != uint64(first-1) || res.First != 1 {
+	if !res.Continuous() || len(res.Runs) != 2 || res.Runs[0].Epoch != old.Epoch || res.Runs[1].First != 5 ||
+		res.Runs[0].Last != 4 || res.Runs[0].Unfiled != 1 || res.First != 1 {
 		t.Fatalf("durable log: %s, runs %+v", res.Summary(), res.Runs)
 	}
+	replayed := 0.0
+	for _, c := range res.StageCosts[:7] {
+		replayed += c
+	}
+	if replayed != cost {
+		t.Fatalf("replaying rounds 1-7 costs %.17g, the world charged %.17g", replayed, cost)
+	}
 	// The new run's first round decided on the positions the robots
-	// reported (re-sent on request), which are the world's.
+	// reported, which are the world's.
 	x := f.m.NewState()
 	if err := f.m.Unflatten(x, rec.Snapshot.Ints, rec.Snapshot.Reals); err != nil {
 		t.Fatal(err)
@@ -195,15 +211,17 @@ func TestFleetCoordinatorKilled(t *testing.T) {
 	for r, want := range reported {
 		moved = moved || f.m.Position(blank, r) != want
 		if got := f.m.Position(x, r); got != want {
-			t.Errorf("new run's round %d has robot %d at %d, it reported %d", first, r, got, want)
+			t.Errorf("new run's round 5 has robot %d at %d, it reported %d", r, got, want)
 		}
 	}
 	if !moved {
 		t.Fatal("the robots are where a fresh coordinator would put them anyway: the check proves nothing")
 	}
 	coordLog, _ := os.ReadFile(f.o.logDir + "/coordinator.log")
-	if strings.Contains(string(coordLog), "without a report") {
-		t.Errorf("the restarted coordinator started without some robot's report:\n%s", coordLog)
+	for _, bad := range []string{"without a report", "did not come within"} {
+		if strings.Contains(string(coordLog), bad) {
+			t.Errorf("the restarted coordinator started without some robot's current report:\n%s", coordLog)
+		}
 	}
 	if !strings.Contains(string(coordLog), "continuing the fleet's rounds from the durable log") {
 		t.Errorf("the restarted coordinator does not say it continued from the log:\n%s", coordLog)

@@ -340,6 +340,15 @@ func (c *Machine) begin() []Action {
 	}
 }
 
+// currentReport: a gathered report says where the robot is now. For a
+// resumed run that is a report of the last round the old run closed (or
+// later): the robots may have carried that round out after the old
+// coordinator died, and a report from before it would put them where they
+// were.
+func (c *Machine) currentReport(g *turn.Report) bool {
+	return g != nil && (c.cfg.Resume == 0 || g.Round >= c.cfg.Resume)
+}
+
 func (c *Machine) hello() SendHello {
 	return SendHello{Msg: turn.Hello{Fleet: c.cfg.Fleet, Epoch: c.cfg.Epoch, Sender: c.cfg.Sender}}
 }
@@ -380,13 +389,16 @@ func (c *Machine) poll() []Action {
 				}
 				acts = append(acts, c.hello(), Arm{At: c.helloAt})
 			}
-			n := 0
+			n, current := 0, 0
 			for _, g := range c.gathered {
 				if g != nil {
 					n++
 				}
+				if c.currentReport(g) {
+					current++
+				}
 			}
-			if n < c.robots && (n == 0 || c.now < c.gatherAt+c.cfg.GatherWait) {
+			if current < c.robots && (n == 0 || c.now < c.gatherAt+c.cfg.GatherWait) {
 				return acts
 			}
 			for r, g := range c.gathered {
@@ -492,9 +504,14 @@ func (c *Machine) start(order []int) []Action {
 	if c.first {
 		c.first = false
 		for _, r := range order {
-			if c.gathered[r] == nil {
+			switch g := c.gathered[r]; {
+			case g == nil:
 				acts = append(acts, Note{Warn: true, Robot: r, Round: c.round, Text: fmt.Sprintf(
 					"starting round %d without a report from robot %d: it is taken to be at its start position until it reports", c.round, r)})
+			case !c.currentReport(g):
+				acts = append(acts, Note{Warn: true, Robot: r, Round: c.round, Text: fmt.Sprintf(
+					"starting round %d with robot %d's report of round %d: its report of round %d (the last one closed) did not come within the first-report wait, and it may have moved since",
+					c.round, r, g.Round, c.cfg.Resume)})
 			}
 		}
 		clear(c.gathered)
@@ -825,7 +842,12 @@ func (c *Machine) onReport(e GotReport) []Action {
 	case !position:
 		c.reports[r] = &o
 	case c.phase == gathering:
-		c.gathered[r] = &o
+		// A resumed run's round numbers go on from the old run's, so the
+		// latest report is the one of the latest round, whatever the order
+		// they come in (a re-sent one may come after a new one).
+		if g := c.gathered[r]; c.cfg.Resume == 0 || g == nil || o.Round >= g.Round {
+			c.gathered[r] = &o
+		}
 	default:
 		c.positions[r] = &o // where the robot is: taken at the next filing
 	}

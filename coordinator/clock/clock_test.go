@@ -739,3 +739,51 @@ func TestResumeContinuesNumbering(t *testing.T) {
 		t.Fatal("a run with every round in the log started one")
 	}
 }
+
+// A resumed run waits for the robots' reports of the last round the old run
+// closed (they may have carried it out after the old coordinator died): a
+// re-sent report of an earlier round does not start it, and does not
+// replace a newer one. With only old reports, it starts after the wait and
+// names the robot.
+func TestResumeWaitsForTheLastRoundsReports(t *testing.T) {
+	cfg := config(t, 3)
+	cfg.Resume = 41
+	r := newRig(t, cfg)
+	r.step(Begin{Now: 0})
+	r.step(Members{Now: 0, Alive: []int{0, 1, 2}})
+	for i := range 3 {
+		if len(of[SendStart](r.report(i, epoch-5, 40, int32(20+i), 0))) != 0 {
+			t.Fatal("started on reports from before the last closed round")
+		}
+	}
+	var acts []Action
+	for i := range 3 {
+		acts = r.report(i, epoch-5, 41, int32(30+i), 0)
+		if i == 0 {
+			r.report(0, epoch-5, 40, 20, 0) // a late re-send of the older one
+		}
+	}
+	s := one[SendStart](t, acts).Msg
+	x := r.m.NewState()
+	_ = r.m.Unflatten(x, s.Ints, s.Reals)
+	for i := range 3 {
+		if p := r.m.Position(x, i); p != int32(30+i) {
+			t.Fatalf("robot %d at %d, its report of round 41 says %d", i, p, 30+i)
+		}
+	}
+	if len(of[Note](acts)) != 0 {
+		t.Fatalf("warned with every report current: %+v", of[Note](acts))
+	}
+
+	r = newRig(t, cfg)
+	r.step(Begin{Now: 0})
+	r.step(Members{Now: 0, Alive: []int{0, 1, 2}})
+	r.report(0, epoch-5, 41, 30, 0)
+	r.report(1, epoch-5, 41, 31, 0)
+	r.report(2, epoch-5, 40, 22, 0)
+	acts = r.at(cfg.GatherWait)
+	one[SendStart](t, acts)
+	if n := one[Note](t, acts); !n.Warn || n.Robot != 2 || !strings.Contains(n.Text, "report of round 40") {
+		t.Fatalf("%+v", n)
+	}
+}
