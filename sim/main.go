@@ -22,6 +22,7 @@ commands:
   compare   base vs all-at-once vs one-at-a-time rollout on seeded episodes
   exact     exact costs of optimal, base and both rollouts on a tiny instance
   fleet     a whole fleet on this machine: embedded NATS, coordinator, one agentd per robot
+  drive     play the world through the local interfaces of daemons running elsewhere
   bench     bench rounds: hop and round latency against the physics;
             bench security: round latency with and without TLS and per-process permissions
   soak      a process fleet for many rounds under loss: goroutines, heap, fds, log size
@@ -52,6 +53,8 @@ func run(args []string) int {
 		err = cmdExact(args[1:])
 	case "fleet":
 		err = cmdFleet(args[1:])
+	case "drive":
+		err = cmdDrive(args[1:])
 	case "bench":
 		err = cmdBench(args[1:])
 	case "train":
