@@ -33,7 +33,7 @@ usage: sudo bash deploy/lab.sh [flags]
   --rate-limit R=RATE    shape robot R's link both ways with tbf (e.g. 1=256kbit; repeatable)
   --scenario NAME        harbor or upkeep (default harbor)
   --seed S               run seed: the world and decisions of `sim fleet --seed S` (default 1)
-  --turn-deadline D      the coordinator's per-turn deadline (default 1s: see deploy/GUIDE.md)
+  --turn-deadline D      the coordinator's per-turn deadline (default 200ms, the coordinator's own)
   --period D             the coordinator's --period: a round starts at most this often (default 250ms)
   --wait D               how long the driver waits for a round's decision (default 15s)
   --keep                 keep the logs directory after a successful run
@@ -50,7 +50,7 @@ KILL_AT=0
 RATES=()
 SCENARIO=harbor
 SEED=1
-TURN_DEADLINE=1s
+TURN_DEADLINE=200ms
 PERIOD=250ms
 KILL_OFFSET=0
 KILL_TARGET=coordinator
@@ -456,6 +456,17 @@ if [ "$KILL_AT" -gt 0 ]; then
 			if (n > 0) printf "longest time between two round ends after the kill: %.3f s (before it: %.3f s, median)\n", gap, gaps[int((n + 1) / 2)]
 		}' "$LOGS/drive.log" | tee "$LOGS/failover.txt"
 	fi
+fi
+# The durable decision log, read back from the surviving servers: every
+# round 1..ROUNDS once, none lost to the kill.
+if ip netns exec "$NS-coord" timeout 60 "$BIN/sim" replay --nats "$NATS_URLS" --creds "$WORK/creds/coordinator.nk" \
+	--fleet "$FLEET" --scenario "$SCENARIO" --robots "$ROBOTS" --export "$LOGS/decisions-stream.jsonl" \
+	>"$LOGS/replay.txt" 2>&1 && grep -q "rounds 1-$ROUNDS in " "$LOGS/replay.txt"; then
+	echo "lab: durable decision log: $(grep -m1 '^rounds ' "$LOGS/replay.txt")"
+else
+	echo "lab: the durable decision log does not hold rounds 1-$ROUNDS once each:" >&2
+	cat "$LOGS/replay.txt" >&2
+	DRIVE_RC=1
 fi
 # The same seed on one machine, in virtual time: equal digests mean the lab
 # decided exactly what sim fleet decides (guesses and holds change them).

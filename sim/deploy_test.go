@@ -145,8 +145,9 @@ func TestShortSoak(t *testing.T) {
 		t.Fatal("the decision log did not grow")
 	}
 	// Two records a round in the durable log (the write-ahead one at the
-	// close, the filed one), the coordinator a round or so ahead.
-	if last.Records < 2*200 || last.Records > 2*200+4 {
+	// close, the filed one), give or take the round in play (records are
+	// written off the round loop, the coordinator may be a round ahead).
+	if last.Records < 2*200-2 || last.Records > 2*200+4 {
 		t.Fatalf("the durable log holds %d records after 200 rounds", last.Records)
 	}
 }

@@ -63,6 +63,14 @@ type SetModel struct {
 // Stop: the run is being interrupted; the round in play is filed as it is.
 type Stop struct{ Now time.Duration }
 
+// CloseSent: the shell published round Round's close at Now. A shell may
+// hold a close back (until the round is in the durable log); the wait for
+// reports and the close's repeats count from here.
+type CloseSent struct {
+	Now   time.Duration
+	Round uint64
+}
+
 func (Begin) isEvent()       {}
 func (Tick) isEvent()        {}
 func (Members) isEvent()     {}
@@ -70,6 +78,7 @@ func (GotDecision) isEvent() {}
 func (GotReport) isEvent()   {}
 func (SetModel) isEvent()    {}
 func (Stop) isEvent()        {}
+func (CloseSent) isEvent()   {}
 
 // Action is one output of the machine.
 type Action interface{ isAction() }
@@ -227,6 +236,7 @@ type Machine struct {
 	lastAt    time.Duration
 	rec       Record
 	closeAt   time.Duration
+	closeSent bool           // the shell published the close (ConfirmCloses)
 	reports   []*turn.Report // this round's, per robot
 	positions []*turn.Report // position reports to absorb at the next filing
 	scratch   model.State
@@ -310,6 +320,12 @@ func (c *Machine) Step(ev Event) []Action {
 	case Stop:
 		c.now = max(c.now, e.Now)
 		return c.stop()
+	case CloseSent:
+		c.now = max(c.now, e.Now)
+		if c.phase == reporting && e.Round == c.round && !c.closeSent {
+			c.closeSent = true
+			c.closeAt, c.repeatAt = max(c.closeAt, c.now), c.now+c.repeatEvery()
+		}
 	default:
 		return nil
 	}
@@ -436,6 +452,9 @@ func (c *Machine) poll() []Action {
 			acts = append(acts, c.close()...)
 			c.sentCopies, c.repeatAt = 0, c.now+c.repeatEvery()
 		case reporting:
+			if !c.reportsIn() && c.cfg.ConfirmCloses && !c.closeSent {
+				return acts // the close has not gone out: nobody could report yet
+			}
 			if !c.reportsIn() && c.now < c.closeAt+c.cfg.ReportWait {
 				// Reports are missing: a robot may have lost the close.
 				if c.now >= c.repeatAt && c.sentCopies < turn.MaxRepeats {
@@ -584,7 +603,7 @@ func (c *Machine) settled() (time.Duration, bool) {
 
 func (c *Machine) close() []Action {
 	var acts []Action
-	c.phase, c.closeAt = reporting, c.now
+	c.phase, c.closeAt, c.closeSent = reporting, c.now, false
 	complete := true
 	for _, r := range c.order {
 		complete = complete && c.got[r] != nil

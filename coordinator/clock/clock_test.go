@@ -787,3 +787,27 @@ func TestResumeWaitsForTheLastRoundsReports(t *testing.T) {
 		t.Fatalf("%+v", n)
 	}
 }
+
+// A close the shell held back (the durable log was slow) gives the robots
+// the whole report wait from when it went out.
+func TestCloseSentRestartsTheReportWait(t *testing.T) {
+	cfg := config(t, 2)
+	cfg.ConfirmCloses = true
+	r := newRig(t, cfg)
+	r.step(Begin{Now: 0})
+	r.step(Members{Now: 0, Alive: []int{0, 1}})
+	r.report(0, 0, 0, 1, 0)
+	r.report(1, 0, 0, 2, 0)
+	r.decide(0, 1, 0)
+	one[SendClose](t, r.decide(1, 1, 0))
+	wait := r.c.cfg.ReportWait
+	if len(of[Filed](r.at(wait+time.Second))) != 0 {
+		t.Fatal("filed before the close went out")
+	}
+	sent := wait + time.Second
+	r.step(CloseSent{Now: sent, Round: 1})
+	if len(of[Filed](r.at(sent+wait-time.Millisecond))) != 0 {
+		t.Fatal("filed before the report wait counted from the close's publication")
+	}
+	one[Filed](t, r.at(sent+wait))
+}

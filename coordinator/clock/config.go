@@ -58,6 +58,10 @@ type Config struct {
 	// Order is the preferred turn order (nil: 0..m-1); robots that are not
 	// alive are skipped.
 	Order Order
+	// ConfirmCloses: the shell holds closes back at times (until the round
+	// is in the durable log) and tells the machine when each went out
+	// (CloseSent); the wait for reports starts only then.
+	ConfirmCloses bool
 	// AutoParallel (--mode auto) runs hybrid rounds and switches a round
 	// to parallel when the measured links cannot fit a sequential round in
 	// the period, and back once they can.

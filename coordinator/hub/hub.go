@@ -48,7 +48,9 @@ type Config struct {
 	// is appended when the round closes, before its close is published,
 	// and again once its reports are filed.
 	Journal Journal
-	Metrics *Metrics
+	// JournalGiveUp: how long one record is retried (0: JournalGiveUp).
+	JournalGiveUp time.Duration
+	Metrics       *Metrics
 	// OnRound is called after each round's reports are filed (progress).
 	OnRound func(clock.Record)
 }
@@ -67,13 +69,15 @@ type Journal interface {
 	Append(ctx context.Context, kind string, epoch, round uint64, line []byte) error
 }
 
-// Journal appends are retried this often, each waiting this long, before
-// the round goes ahead without its record (counted and logged): the fleet
-// keeps deciding through a JetStream leader election, and the file log
-// still has the line.
+// A journal append waits JournalWait for the stream's acknowledgement and is
+// tried again every JournalRetry until JournalGiveUp has passed; then the
+// round goes ahead without its record (counted and logged; the file log
+// still has the line). A JetStream cluster elects a new stream leader in
+// about 2 s, well inside it.
 const (
-	JournalTries = 3
-	JournalWait  = 2 * time.Second
+	JournalWait   = 2 * time.Second
+	JournalRetry  = 250 * time.Millisecond
+	JournalGiveUp = 10 * time.Second
 )
 
 // Metrics are the coordinator's Prometheus series.
@@ -126,7 +130,31 @@ type Hub struct {
 	drops   shell.Drops
 	alive   []int
 	subs    shell.SubDrops
+
+	// The durable log is written by its own goroutine (jobs, in order), so
+	// the event loop never waits on it. Messages wait instead: outbox holds
+	// them, in order, behind gates, the rounds whose write-ahead record
+	// has not been stored yet; acks says which gate was.
+	jobs   chan journalJob
+	acks   chan uint64
+	outbox []outItem
+	gates  int
 }
+
+type journalJob struct {
+	line Line
+	gate uint64 // the round whose messages wait for this record (0: none)
+}
+
+// outItem is a message held back, or (act nil) a gate.
+type outItem struct {
+	act  clock.Action
+	gate uint64
+}
+
+// JournalQueue bounds the records waiting for the durable log; past it a
+// record is dropped and counted (the stream has been down for minutes).
+const JournalQueue = 1024
 
 // New prepares a hub on a bus. cfg.Clock must pass Validate; an epoch of 0
 // is set from the wall clock (microseconds: larger for a restarted
@@ -141,6 +169,12 @@ func New(cfg Config, bus shell.Bus) *Hub {
 	now := time.Now()
 	if cfg.Clock.Epoch == 0 {
 		cfg.Clock.Epoch = uint64(now.UnixMicro())
+	}
+	// With a durable log, closes wait for their round's record: the
+	// machine then times the report wait from each close's publication.
+	cfg.Clock.ConfirmCloses = cfg.Journal != nil
+	if cfg.JournalGiveUp <= 0 {
+		cfg.JournalGiveUp = JournalGiveUp
 	}
 	return &Hub{cfg: cfg, bus: bus, machine: clock.New(cfg.Clock), start: now, timers: make(chan struct{}, 1),
 		models: make(chan uint64, 4), done: make(chan struct{}), drops: shell.Drops{Log: cfg.Log, Counter: cfg.Metrics.Dropped}}
@@ -180,6 +214,19 @@ func (h *Hub) Run(ctx context.Context) error {
 	if err := h.bus.Flush(); err != nil {
 		return fmt.Errorf("nats flush: %w", err)
 	}
+	if h.cfg.Journal != nil {
+		h.jobs, h.acks = make(chan journalJob, JournalQueue), make(chan uint64, JournalQueue)
+		written := make(chan struct{})
+		go h.journalWriter(written)
+		defer func() {
+			close(h.jobs)
+			select { // what is queued gets its tries, within bounds
+			case <-written:
+			case <-time.After(h.cfg.JournalGiveUp + JournalWait):
+				h.cfg.Log.Error("decision log stream: records still queued at exit were not stored")
+			}
+		}()
+	}
 	h.cfg.Log.Info("run begins", zap.Uint64("epoch", h.cfg.Clock.Epoch))
 	begin := append(h.machine.Step(clock.Begin{Now: h.now()}), h.members(true)...)
 	if done, err := h.apply(begin); done || err != nil {
@@ -215,6 +262,11 @@ func (h *Hub) Run(ctx context.Context) error {
 			acts = append(h.members(false), h.machine.Step(clock.GotReport{Now: h.now(), Subject: h.cfg.Subjects.RobotOf(msg.Subject), Msg: o})...)
 		case v := <-h.models:
 			acts = h.machine.Step(clock.SetModel{Now: h.now(), Version: v})
+		case round := <-h.acks:
+			var err error
+			if acts, err = h.release(round); err != nil {
+				return err
+			}
 		case <-members.C:
 			acts = h.members(false)
 		case <-second.C:
@@ -254,20 +306,28 @@ func (h *Hub) apply(acts []clock.Action) (done bool, err error) {
 	// Messages first, in order: a round's latency runs from the moment the
 	// machine starts it, and writing the previous round's log line (often
 	// in the same batch) must not sit in between.
-	// A round's decisions reach the durable log before its close goes out:
-	// a successor coordinator then never numbers a round robots acted on
-	// a second time.
+	// A round's decisions reach the durable log before its close goes out
+	// (and so before anything after it): a successor coordinator then
+	// never numbers a round robots acted on a second time.
 	for _, a := range acts {
-		if c, ok := a.(clock.Closed); ok {
-			h.journal(Line{Record: c.Record, StartedAt: h.start.Add(c.Record.Start), Kind: shell.JournalClosed})
+		if c, ok := a.(clock.Closed); ok && h.jobs != nil {
+			h.enqueue(journalJob{line: Line{Record: c.Record, StartedAt: h.start.Add(c.Record.Start), Kind: shell.JournalClosed}, gate: c.Record.Round})
 		}
 	}
 	rest := acts[:0:0]
+	var sentNow []uint64 // closes that went out at once (no record to wait for)
 	for _, a := range acts {
 		switch a.(type) {
 		case clock.SendStart, clock.SendClose, clock.SendHello:
+			if h.gates > 0 {
+				h.outbox = append(h.outbox, outItem{act: a})
+				continue
+			}
 			if done, err = h.act(a); err != nil {
 				return done, err
+			}
+			if c, ok := a.(clock.SendClose); ok && !c.Repeat {
+				sentNow = append(sentNow, c.Msg.Round)
 			}
 		default:
 			rest = append(rest, a)
@@ -278,6 +338,15 @@ func (h *Hub) apply(acts []clock.Action) (done bool, err error) {
 		done = done || d
 		if err != nil {
 			return done, err
+		}
+	}
+	if h.cfg.Clock.ConfirmCloses {
+		for _, r := range sentNow {
+			d, err := h.apply(h.machine.Step(clock.CloseSent{Now: h.now(), Round: r}))
+			done = done || d
+			if err != nil {
+				return done, err
+			}
 		}
 	}
 	return done, nil
@@ -352,8 +421,8 @@ func (h *Hub) publish(subject, what string, round uint64, encode func() ([]byte,
 // file writes a round's decision-log line, flushed, so a run that is
 // killed has written every round it completed.
 func (h *Hub) file(r clock.Record) {
-	if !r.Interrupted {
-		h.journal(Line{Record: r, StartedAt: h.start.Add(r.Start)})
+	if !r.Interrupted && h.jobs != nil {
+		h.enqueue(journalJob{line: Line{Record: r, StartedAt: h.start.Add(r.Start)}})
 	}
 	if h.cfg.DecisionLog != nil {
 		line, err := json.Marshal(Line{Record: r, StartedAt: h.start.Add(r.Start)})
@@ -372,27 +441,81 @@ func (h *Hub) file(r clock.Record) {
 	}
 }
 
+// enqueue hands a record to the journal writer; a gated one holds back the
+// messages that follow until it is stored (or given up on).
+func (h *Hub) enqueue(j journalJob) {
+	select {
+	case h.jobs <- j:
+		if j.gate != 0 {
+			h.gates++
+			h.outbox = append(h.outbox, outItem{gate: j.gate})
+		}
+	default:
+		h.cfg.Metrics.JournalFails.Inc()
+		h.cfg.Log.Error("decision log stream: queue full, record dropped (the stream has not taken records for a long time)",
+			zap.Uint64("round", j.line.Round))
+	}
+}
+
+// journalWriter stores queued records in order and acknowledges gates.
+func (h *Hub) journalWriter(done chan<- struct{}) {
+	defer close(done)
+	for j := range h.jobs {
+		h.journal(j.line)
+		if j.gate != 0 {
+			h.acks <- j.gate // never blocks: at most JournalQueue gates are out
+		}
+	}
+}
+
+// release lifts round's gate and sends the messages it held, up to the
+// next gate; a close that goes out late tells the machine when.
+func (h *Hub) release(round uint64) ([]clock.Action, error) {
+	if len(h.outbox) == 0 || h.outbox[0].act != nil || h.outbox[0].gate != round {
+		return nil, fmt.Errorf("decision log: gate for round %d acknowledged out of order", round)
+	}
+	h.gates--
+	h.outbox = h.outbox[1:]
+	var acts []clock.Action
+	var closed []uint64
+	for len(h.outbox) > 0 && h.outbox[0].act != nil {
+		a := h.outbox[0].act
+		h.outbox = h.outbox[1:]
+		if c, ok := a.(clock.SendClose); ok {
+			if c.Repeat && slices.Contains(closed, c.Msg.Round) {
+				continue // the copies that piled up: the close just went out
+			}
+			closed = append(closed, c.Msg.Round)
+		}
+		if _, err := h.act(a); err != nil {
+			return acts, err
+		}
+	}
+	for _, r := range closed {
+		acts = append(acts, h.machine.Step(clock.CloseSent{Now: h.now(), Round: r})...)
+	}
+	return acts, nil
+}
+
 // journal appends one record to the durable log, retrying; a record that
 // cannot be stored is logged and counted, and the fleet goes on.
 func (h *Hub) journal(l Line) {
-	if h.cfg.Journal == nil {
-		return
-	}
 	kind := l.Kind
 	if kind == "" {
 		kind = shell.JournalFiled
 	}
 	data, err := json.Marshal(l)
-	for try := 0; data != nil && try < JournalTries; try++ {
-		if try > 0 {
-			time.Sleep(time.Duration(try) * 100 * time.Millisecond) // a leader election takes a moment
-		}
+	for start := time.Now(); data != nil; {
 		ctx, cancel := context.WithTimeout(context.Background(), JournalWait)
 		err = h.cfg.Journal.Append(ctx, kind, l.Epoch, l.Round, data)
 		cancel()
 		if err == nil {
 			return
 		}
+		if time.Since(start)+JournalRetry > h.cfg.JournalGiveUp {
+			break
+		}
+		time.Sleep(JournalRetry)
 	}
 	h.cfg.Metrics.JournalFails.Inc()
 	h.cfg.Log.Error("decision log stream did not take the round; it goes ahead (the file log, if any, has it)",

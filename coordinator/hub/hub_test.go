@@ -4,6 +4,7 @@ import (
 	"bytes"
 	"context"
 	"encoding/json"
+	"fmt"
 	"strings"
 	"sync"
 	"testing"
@@ -141,7 +142,7 @@ func TestHubJournal(t *testing.T) {
 		cc.TurnBudget = time.Hour
 		j := &journalRec{closes: make(chan *nats.Msg, 64), fails: fails}
 		met := NewMetrics(nil)
-		h := New(Config{Clock: cc, Subjects: subj, Journal: j, Metrics: met}, bus)
+		h := New(Config{Clock: cc, Subjects: subj, Journal: j, Metrics: met, JournalGiveUp: 600 * time.Millisecond}, bus)
 		starts := make(chan *nats.Msg, 8)
 		bus.ChanSubscribe(subj.Round, starts)
 		bus.ChanSubscribe(subj.Close, j.closes)
@@ -189,6 +190,105 @@ func TestHubJournal(t *testing.T) {
 		default:
 			if len(got) != 0 || testutil.ToFloat64(met.JournalFails) != 2 {
 				t.Fatalf("journal %v, %g failures counted, want both records counted as lost", got, testutil.ToFloat64(met.JournalFails))
+			}
+		}
+	}
+}
+
+// slowJournal stalls on round 1's filed record, as a stream does while its
+// cluster elects a new leader.
+type slowJournal struct {
+	stall time.Duration
+	mu    sync.Mutex
+	kinds []string
+}
+
+func (j *slowJournal) Append(_ context.Context, kind string, _, round uint64, _ []byte) error {
+	if kind == shell.JournalFiled && round == 1 {
+		time.Sleep(j.stall)
+	}
+	j.mu.Lock()
+	j.kinds = append(j.kinds, fmt.Sprint(kind, round))
+	j.mu.Unlock()
+	return nil
+}
+
+// A stalled durable log does not stall the round loop: round 2's decisions,
+// sent while round 1's record waits, are taken within their deadlines
+// (nobody held), and round 2's close goes out once its own record is in.
+func TestHubSlowJournalHoldsNobody(t *testing.T) {
+	m, _ := harbor.Default(2)
+	subj, _ := pb.NewSubjects("baton", "yard")
+	bus := &shell.MemBus{}
+	cc := clock.DefaultConfig()
+	cc.Fleet, cc.Model, cc.Decide, cc.Epoch, cc.Rounds = "yard", m, decide.Config{Samples: 2, Horizon: 2}, 42, 2
+	cc.TurnBudget = 100 * time.Millisecond
+	j := &slowJournal{stall: 1500 * time.Millisecond}
+	log := &syncBuf{}
+	h := New(Config{Clock: cc, Subjects: subj, Journal: j, DecisionLog: log}, bus)
+	starts, closes := make(chan *nats.Msg, 64), make(chan *nats.Msg, 64)
+	bus.ChanSubscribe(subj.Round, starts)
+	bus.ChanSubscribe(subj.Close, closes)
+	done := make(chan error)
+	go func() { done <- h.Run(context.Background()) }()
+	report := func(round, epoch uint64) {
+		for r := range 2 {
+			data, _ := wire.EncodeReport(turn.Report{Fleet: "yard", Epoch: epoch, Round: round, Robot: uint32(r), Position: int32(r)})
+			bus.Publish(subj.ObsOf(r), data)
+		}
+	}
+	decideAll := func(round uint64) {
+		for r := range 2 {
+			data, _ := wire.EncodeDecision(turn.Decision{Fleet: "yard", Epoch: 42, Round: round, Robot: uint32(r), Control: 0})
+			bus.Publish(subj.DecisionOf(r), data)
+		}
+	}
+	deadline := time.Now().Add(10 * time.Second)
+	var closedAt2 time.Time
+	for round := uint64(0); ; {
+		select {
+		case err := <-done:
+			if err != nil {
+				t.Fatal(err)
+			}
+			if closedAt2.IsZero() {
+				t.Fatal("round 2 never closed")
+			}
+			var lines []Line
+			for _, s := range strings.Split(strings.TrimSpace(log.String()), "\n") {
+				var l Line
+				if err := json.Unmarshal([]byte(s), &l); err != nil {
+					t.Fatal(err)
+				}
+				lines = append(lines, l)
+			}
+			if len(lines) != 2 || len(lines[1].Held) != 0 || len(lines[0].Held) != 0 {
+				t.Fatalf("rounds %+v: want 2 rounds, nobody held", lines)
+			}
+			j.mu.Lock()
+			defer j.mu.Unlock()
+			if strings.Join(j.kinds, ",") != "closed1,filed1,closed2,filed2" {
+				t.Fatalf("journal order %v", j.kinds)
+			}
+			return
+		case m := <-starts:
+			s, _ := wire.Start(m.Data)
+			if s.Round > round {
+				round = s.Round
+				decideAll(round)
+			}
+		case m := <-closes:
+			c, _ := wire.Close(m.Data)
+			if c.Round == 2 && closedAt2.IsZero() {
+				closedAt2 = time.Now()
+			}
+			report(c.Round, 42)
+		case <-time.After(20 * time.Millisecond):
+			if round == 0 {
+				report(0, 0)
+			}
+			if time.Now().After(deadline) {
+				t.Fatalf("stuck at round %d", round)
 			}
 		}
 	}

@@ -166,38 +166,39 @@ func ReadJournal(ctx context.Context, nc *nats.Conn, prefix, fleet string, fn fu
 	if err != nil {
 		return fmt.Errorf("decision log stream %s: %w", name, err)
 	}
-	last := info.State.LastSeq
 	if info.State.Msgs == 0 {
 		return nil
 	}
-	cons, err := st.OrderedConsumer(ctx, jetstream.OrderedConsumerConfig{})
-	if err != nil {
-		return fmt.Errorf("decision log stream %s: %w", name, err)
-	}
+	// Record by record (a direct request each): slower than a consumer,
+	// but nothing to set up that a cluster failover could take away, and
+	// each request is simply asked again.
 	closed := JournalSubject(prefix, fleet, JournalClosed)
-	for {
-		m, err := cons.Next(jetstream.FetchMaxWait(5 * time.Second))
-		if err != nil {
-			return fmt.Errorf("decision log stream %s: reading: %w", name, err)
+	for seq := info.State.FirstSeq; seq <= info.State.LastSeq; seq++ {
+		var m *jetstream.RawStreamMsg
+		for try := 0; ; try++ {
+			if m, err = st.GetMsg(ctx, seq); err == nil || errors.Is(err, jetstream.ErrMsgNotFound) || try == 4 || ctx.Err() != nil {
+				break
+			}
+			time.Sleep(250 * time.Millisecond)
 		}
-		md, err := m.Metadata()
-		if err != nil {
-			return fmt.Errorf("decision log stream %s: %w", name, err)
+		if errors.Is(err, jetstream.ErrMsgNotFound) {
+			continue // removed (the oldest go first past the stream's size)
 		}
-		if len(m.Data()) > MaxJournalRecord {
-			return fmt.Errorf("decision log stream %s: record %d is %d bytes (at most %d)", name, md.Sequence.Stream, len(m.Data()), MaxJournalRecord)
+		if err != nil {
+			return fmt.Errorf("decision log stream %s: reading record %d: %w", name, seq, err)
+		}
+		if len(m.Data) > MaxJournalRecord {
+			return fmt.Errorf("decision log stream %s: record %d is %d bytes (at most %d)", name, seq, len(m.Data), MaxJournalRecord)
 		}
 		kind := JournalFiled
-		if m.Subject() == closed {
+		if m.Subject == closed {
 			kind = JournalClosed
 		}
-		if err := fn(JournalRecord{Kind: kind, Sequence: md.Sequence.Stream, Data: m.Data()}); err != nil {
+		if err := fn(JournalRecord{Kind: kind, Sequence: seq, Data: m.Data}); err != nil {
 			return err
 		}
-		if md.Sequence.Stream >= last {
-			return nil
-		}
 	}
+	return nil
 }
 
 // JournalSize is what a fleet's stream holds: bytes and records.
