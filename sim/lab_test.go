@@ -95,6 +95,7 @@ func TestLab(t *testing.T) {
 		t.Fatalf("lab exit %d", code)
 	}
 	for _, want := range []string{"SIGKILLed", "rounds affected (a robot held): 0", "rounds full again: ",
+		"durable decision log: rounds 1-20 in 1 run(s), no gap, no doubled round",
 		"every round completed for every live robot", "torn down"} {
 		if !strings.Contains(out, want) {
 			t.Errorf("the lab's output lacks %q", want)
