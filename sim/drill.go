@@ -8,14 +8,19 @@ import (
 	"os/signal"
 	"path/filepath"
 	"runtime"
+	"strings"
 	"syscall"
 	"time"
 
+	"baton/coordinator/clock"
+	"baton/coordinator/view"
 	"baton/sim/drill"
+	"baton/sim/drill/result"
 	"baton/sim/fault"
+	"baton/sim/model"
 )
 
-func cmdDrill(args []string) error {
+func cmdDrill(args []string) (err error) {
 	fs := newFlags("drill", `Run a drill file: fleets through scheduled faults (message loss, bursty loss,
 delays, partitions, slow robots; killed daemons, coordinator or NATS server;
 stalled and reset connections), every configuration of its sweep on the same
@@ -26,6 +31,7 @@ policy and fault-free sequential rollout.
 	file := fs.String("file", "", "drill file (YAML; see deploy/examples/drill-*.yaml)")
 	jsonOut := fs.String("json", "", "write the report as JSON to this file")
 	htmlOut := fs.String("html", "", "write the report as one self-contained HTML page to this file")
+	replaysN := fs.Int("replays", 5, "with --html: replay pages (FILE-worst-N.html, linked from the report) of the worst episode of this many configurations, those with the highest mean cost (virtual drills)")
 	workers := fs.Int("workers", runtime.NumCPU(), "configurations run at once (virtual-time drills)")
 	episodes := fs.Int("episodes", 0, "episodes per configuration (0: the file's)")
 	logs := fs.String("logs", "", "process drills: directory for the daemons' logs (default: a temporary one)")
@@ -37,6 +43,9 @@ policy and fault-free sequential rollout.
 		fmt.Fprintln(fs.Output(), "sim drill: --file is required")
 		fs.Usage()
 		return errUsage
+	}
+	if *replaysN < 0 || *replaysN > 1000 {
+		return fmt.Errorf("--replays %d: want 0..1000", *replaysN)
 	}
 	if *workers < 1 || *workers > 256 {
 		return fmt.Errorf("--workers %d: want 1..256", *workers)
@@ -74,6 +83,29 @@ policy and fault-free sequential rollout.
 		o.Gossip = measureGossip
 	}
 	o.Progress = progress("fleet runs")
+	var replays []string // written beside the page; removed if the drill fails
+	if *htmlOut != "" {
+		fm, ok := d.Model.(model.Fleet)
+		if ok && *replaysN > 0 {
+			o.Replays = *replaysN
+			base := strings.TrimSuffix(*htmlOut, filepath.Ext(*htmlOut))
+			o.Worst = func(c result.Config, recs []clock.Record) (string, error) {
+				name := fmt.Sprintf("%s-worst-%d.html", base, len(replays)+1)
+				if err := writeWorstReplay(name, fm, d.Name, c, recs); err != nil {
+					return "", err
+				}
+				replays = append(replays, name)
+				return filepath.Base(name), nil
+			}
+		}
+	}
+	defer func() {
+		if err != nil {
+			for _, r := range replays {
+				os.Remove(r)
+			}
+		}
+	}()
 	rep, err := drill.Run(ctx, d, o)
 	if err != nil {
 		if ctx.Err() != nil {
@@ -203,4 +235,26 @@ func measureGossip(ctx context.Context, robots int, specs []fault.Spec) (int, er
 		return 0, err
 	}
 	return res.FalseDead, nil
+}
+
+// writeWorstReplay writes the replay page of a drill configuration's worst
+// episode.
+func writeWorstReplay(path string, m model.Fleet, drillName string, c result.Config, recs []clock.Record) error {
+	site, err := view.NewSite("drill", m)
+	if err != nil {
+		return err
+	}
+	site.Mode, site.Source = "replay", fmt.Sprintf("drill %s, %s, episode %d", drillName, c.Name, c.WorstEpisode)
+	site.Summary = map[string]any{"drill": drillName, "config": c.Name, "episode": c.WorstEpisode,
+		"episode_cost": c.EpisodeCosts[c.WorstEpisode], "config_mean_cost": c.MeanCost, "rounds": len(recs),
+		"faults": c.Faults}
+	frames := make([]view.Frame, 0, len(recs))
+	for _, r := range recs {
+		f, err := view.FrameOf(m, r)
+		if err != nil {
+			return err
+		}
+		frames = append(frames, f)
+	}
+	return writeReplayHTML(path, site, frames)
 }

@@ -2,7 +2,9 @@ package main
 
 import (
 	"context"
+	"encoding/json"
 	"errors"
+	"fmt"
 	"io"
 	"os"
 	"os/exec"
@@ -12,6 +14,7 @@ import (
 	"testing"
 	"time"
 
+	"baton/coordinator/view"
 	"baton/signal"
 	"baton/sim/drill"
 	"baton/sim/fleetsum"
@@ -195,5 +198,57 @@ func TestLocalInterfaceNeedsATokenBeyondLocalhost(t *testing.T) {
 	out, err = exec.Command(simBin, "agentd", "--robot", "0", "--nats", "nats://127.0.0.1:1", "--http", "0.0.0.0:0", "--http-token-file", tok).CombinedOutput()
 	if ee, ok := err.(*exec.ExitError); !ok || ee.ExitCode() != 2 || !strings.Contains(string(out), "at least 16 characters") {
 		t.Fatalf("%v\n%s", err, out)
+	}
+}
+
+// sim drill --html links the report to replay pages of the worst episodes
+// of the costliest configurations, each holding every round of it.
+func TestDrillReplayPages(t *testing.T) {
+	dir := t.TempDir()
+	file := filepath.Join(dir, "small.yaml")
+	yaml := `name: small
+scenario: harbor
+robots: 3
+rounds: 12
+episodes: 2
+seed: 3
+samples: 4
+horizon: 6
+turn_deadline: 100ms
+sweep:
+  modes: [hybrid, parallel]
+  guesses: [base]
+  loss: [0, 0.3]
+`
+	if err := os.WriteFile(file, []byte(yaml), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	page := filepath.Join(dir, "report.html")
+	out, err := exec.Command(simBin, "drill", "--file", file, "--html", page, "--no-gossip", "--replays", "2").CombinedOutput()
+	if err != nil {
+		t.Fatalf("%v\n%s", err, out)
+	}
+	report, _ := os.ReadFile(page)
+	for _, n := range []int{1, 2} {
+		name := fmt.Sprintf("report-worst-%d.html", n)
+		if !strings.Contains(string(report), `href="`+name+`"`) {
+			t.Fatalf("the report does not link %s", name)
+		}
+		replay, err := os.ReadFile(filepath.Join(dir, name))
+		if err != nil {
+			t.Fatal(err)
+		}
+		_, data, ok := strings.Cut(string(replay), `<script id="baton-data" type="application/json">`)
+		data, _, _ = strings.Cut(data, "</script>")
+		var got struct {
+			Site   view.Site    `json:"site"`
+			Frames []view.Frame `json:"frames"`
+		}
+		if !ok || json.Unmarshal([]byte(data), &got) != nil || len(got.Frames) != 12 || got.Site.Mode != "replay" {
+			t.Fatalf("%s: %d frames, site %+v", name, len(got.Frames), got.Site)
+		}
+	}
+	if _, err := os.Stat(filepath.Join(dir, "report-worst-3.html")); err == nil {
+		t.Fatal("more replay pages than --replays asked for")
 	}
 }

@@ -634,16 +634,26 @@ exactly what the real fleet decides for the same flags: compare decisions_sha256
 	fs.DurationVar(&o.link.Jitter, "jitter", 0, "virtual: plus a uniform random delay in [0, jitter)")
 	fs.Float64Var(&o.link.Loss, "loss", 0, "virtual: probability that a delivery is lost")
 	fs.DurationVar(&o.turnTime, "turn-time", o.turnTime, "virtual: virtual time one rollout turn takes")
+	watch := fs.Bool("view", false, "print the live view's address (the coordinator's /view: the site, every robot and its move, guesses and holds) and start rounds at most every 300ms (unless --period says otherwise) so the fleet can be watched")
 	if err := parse(fs, args); err != nil {
 		return err
 	}
 	o.link.Seed = o.seed
+	periodSet := false
 	fs.Visit(func(f *flag.Flag) {
 		switch f.Name {
 		case "hop", "jitter", "loss", "turn-time":
 			o.virtualOnly = append(o.virtualOnly, f.Name)
+		case "period":
+			periodSet = true
 		}
 	})
+	if *watch && o.virtual {
+		return errors.New("--view shows a fleet of processes (the coordinator serves it); for the virtual fleet, replay its log: sim replay --view")
+	}
+	if *watch && !periodSet {
+		o.clock.Period = 300 * time.Millisecond
+	}
 	var err error
 	if o.exe, err = os.Executable(); err != nil {
 		return err
@@ -697,6 +707,9 @@ exactly what the real fleet decides for the same flags: compare decisions_sha256
 		sum.Scenario, sum.Robots, sum.DecisionLog, sum.ProcessLogDir = m.Name(), m.Robots(), f.decisionLog(), o.logDir
 		if !*asJSON {
 			fmt.Printf("fleet %s: %s, %d robots, %s mode, NATS %s, logs in %s\n", o.fleet, m.Name(), m.Robots(), o.clock.Mode, f.url, o.logDir)
+		}
+		if *watch {
+			fmt.Fprintf(os.Stderr, "live view: http://%s/view  (open it in a browser; rounds every %s)\n", f.chttp, o.clock.Period)
 		}
 		t0 = time.Now()
 		for round := 1; round <= rounds && ctx.Err() == nil; round++ {

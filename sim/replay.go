@@ -9,8 +9,12 @@ import (
 	"fmt"
 	"io"
 	"math"
+	"net"
+	"net/http"
 	"os"
+	"os/signal"
 	"strings"
+	"syscall"
 	"text/tabwriter"
 	"time"
 
@@ -18,6 +22,7 @@ import (
 	"go.uber.org/zap"
 
 	"baton/coordinator/hub"
+	"baton/coordinator/view"
 	"baton/deploy/shell"
 	"baton/sim/model"
 )
@@ -284,6 +289,8 @@ state and controls, and compares it with the logged one.
 	export := fs.String("export", "", "with --nats: also write every record as stored to this file (replay it later with --file)")
 	asJSON := fs.Bool("json", false, "print the result as one JSON object")
 	rounds := fs.Bool("rounds", false, "print every round (round, run, controls, held, stage cost)")
+	viewAddr := fs.String("view", "", "serve the replay page (step, play, jump, speed) at this address, e.g. 127.0.0.1:7490, until Ctrl-C")
+	htmlOut := fs.String("html", "", "write the replay page, with the whole log in it, to this one self-contained HTML file")
 	if err := parse(fs, args); err != nil {
 		return err
 	}
@@ -331,8 +338,104 @@ state and controls, and compares it with the logged one.
 	} else {
 		printReplay(os.Stdout, res, *rounds)
 	}
+	if *htmlOut != "" || *viewAddr != "" {
+		site, frames, err := replayFrames(res, c.Fleet, m)
+		if err != nil {
+			return err
+		}
+		if *htmlOut != "" {
+			if err := writeReplayHTML(*htmlOut, site, frames); err != nil {
+				return err
+			}
+			fmt.Fprintf(os.Stderr, "replay page: %s (%d rounds)\n", *htmlOut, len(frames))
+		}
+		if *viewAddr != "" {
+			return serveReplay(*viewAddr, site, frames)
+		}
+	}
 	if !res.Continuous() {
 		return fmt.Errorf("the log is not continuous: %s", res.Summary())
+	}
+	return nil
+}
+
+// replaySummary is what the replay page shows beside the map.
+type replaySummary struct {
+	Source   string      `json:"source"`
+	Rounds   int         `json:"rounds"`
+	First    uint64      `json:"first_round"`
+	Last     uint64      `json:"last_round"`
+	Runs     []replayRun `json:"runs"`
+	Cost     float64     `json:"cost"`
+	Logged   float64     `json:"logged_cost"`
+	CostKind string      `json:"cost_kind"`
+	Log      string      `json:"log"`
+}
+
+// replayFrames draws every round of a replayed log.
+func replayFrames(res replayResult, fleet string, m model.Fleet) (view.Site, []view.Frame, error) {
+	site, err := view.NewSite(fleet, m)
+	if err != nil {
+		return site, nil, err
+	}
+	site.Mode, site.Source = "replay", res.Source
+	site.Summary = replaySummary{Source: res.Source, Rounds: res.Rounds, First: res.First, Last: res.Last, Runs: res.Runs,
+		Cost: res.Cost, Logged: res.Logged, CostKind: costKind(res.Scenario), Log: res.Summary()}
+	frames := make([]view.Frame, 0, len(res.rounds))
+	for _, r := range res.rounds {
+		rec := r.Record
+		if !r.Filed {
+			rec.Stage = r.Recomputed
+		}
+		f, err := view.FrameOf(m, rec)
+		if err != nil {
+			return site, nil, err
+		}
+		frames = append(frames, f)
+	}
+	return site, frames, nil
+}
+
+func writeReplayHTML(path string, site view.Site, frames []view.Frame) error {
+	f, err := os.Create(path)
+	if err != nil {
+		return fmt.Errorf("--html: %w", err)
+	}
+	bw := bufio.NewWriter(f)
+	err = view.WriteHTML(bw, site, frames)
+	if ferr := bw.Flush(); err == nil {
+		err = ferr
+	}
+	if cerr := f.Close(); err == nil {
+		err = cerr
+	}
+	if err != nil {
+		os.Remove(path)
+		return fmt.Errorf("--html %s: %w", path, err)
+	}
+	return nil
+}
+
+// serveReplay serves the replay page until Ctrl-C.
+func serveReplay(addr string, site view.Site, frames []view.Frame) error {
+	h, err := view.Replay(site, frames)
+	if err != nil {
+		return err
+	}
+	ln, err := net.Listen("tcp", addr)
+	if err != nil {
+		return fmt.Errorf("--view %s: %w", addr, err)
+	}
+	srv := &http.Server{Handler: h, ReadHeaderTimeout: 5 * time.Second}
+	ctx, stop := signal.NotifyContext(context.Background(), os.Interrupt, syscall.SIGTERM)
+	defer stop()
+	go func() {
+		<-ctx.Done()
+		srv.Close()
+	}()
+	fmt.Printf("replay view: http://%s/view  (Ctrl-C to stop)\n", ln.Addr())
+	if err := srv.Serve(ln); err != nil && !errors.Is(err, http.ErrServerClosed) {
+		return err
 	}
 	return nil
 }

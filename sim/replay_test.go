@@ -10,6 +10,7 @@ import (
 
 	"baton/coordinator/clock"
 	"baton/coordinator/hub"
+	"baton/coordinator/view"
 	"baton/deploy/shell"
 	"baton/sim/fuzzcheck"
 	"baton/sim/harbor"
@@ -180,7 +181,9 @@ func FuzzReplayLine(f *testing.F) {
 		used := fuzzcheck.Allocated(func() {
 			var l hub.Line
 			if l, err = parseLogLine(data); err == nil {
-				_, err = assemble([]hub.Line{l}, m, digest)
+				if _, err = assemble([]hub.Line{l}, m, digest); err == nil {
+					_, err = view.FrameOf(m, l.Record) // the replay page draws what replays
+				}
 			}
 		})
 		// JSON decoding into slices: a few times the input, plus the

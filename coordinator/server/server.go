@@ -25,6 +25,7 @@ import (
 
 	"baton/coordinator/clock"
 	"baton/coordinator/hub"
+	"baton/coordinator/view"
 	"baton/deploy/shell"
 	"baton/signal/learn"
 	"baton/sim/model"
@@ -59,7 +60,7 @@ func MainWith(args []string, hooks shell.Hooks) int {
 	resume := fs.Bool("resume", true, "continue the round numbering from the durable log (false: a new episode from round 1; the log tells runs apart by epoch)")
 	guessModel := fs.String("guess-model", "", "trained guess model file (sim train --out) to distribute to the robots through JetStream; watched for new versions")
 	logFile := fs.String("decision-log", "", "append one JSON line per round to this file")
-	httpAddr := fs.String("http", "127.0.0.1:7480", "healthz and metrics address")
+	httpAddr := fs.String("http", "127.0.0.1:7480", "address of /healthz, /metrics and the fleet view /view (the site, every robot's move, guesses and holds, live)")
 	gossip := fs.String("gossip", "127.0.0.1:7946", "gossip bind host:port that robots --join")
 	if hooks.Flags != nil {
 		hooks.Flags(fs)
@@ -184,6 +185,23 @@ func MainWith(args []string, hooks shell.Hooks) int {
 	}
 	mux := http.NewServeMux()
 	mux.Handle("GET /metrics", promhttp.HandlerFor(reg, promhttp.HandlerOpts{}))
+	// The fleet view: every filed round drawn (coordinator/view).
+	if site, err := view.NewSite(c.Fleet, m); err == nil {
+		live, err := view.NewLive(site)
+		if err != nil {
+			return fail(err)
+		}
+		vh := live.Handler()
+		mux.Handle("/view", vh)
+		mux.Handle("/view/", vh)
+		hcfg.OnRound = func(r clock.Record) {
+			if f, err := view.FrameOf(m, r); err == nil {
+				live.Add(f)
+			} else {
+				lg.Warn("the view cannot draw the round", zap.Uint64("round", r.Round), zap.Error(err))
+			}
+		}
+	}
 	mux.HandleFunc("GET /healthz", func(w http.ResponseWriter, _ *http.Request) {
 		if !nc.IsConnected() {
 			http.Error(w, "not connected to NATS", http.StatusServiceUnavailable)

@@ -1,6 +1,7 @@
 package drill
 
 import (
+	"cmp"
 	"context"
 	"fmt"
 	"math"
@@ -60,6 +61,8 @@ type Job struct {
 	Faults    []fault.Spec
 	FaultSeed uint64
 	Guesses   signal.Options
+	// OnFiled gets every round's decision-log record (virtual runs).
+	OnFiled func(clock.Record)
 }
 
 // Runner runs jobs that need real processes.
@@ -84,6 +87,12 @@ type Options struct {
 	// Classifier for learned guesses (nil: Load the drill's guess_model,
 	// or train one when it names none).
 	Classifier *learn.Net
+	// Worst, when set, gets the worst episode of each of the Replays
+	// virtual configurations with the highest mean cost, played again (the
+	// same seeds replay it exactly) with every round's decision-log record,
+	// and returns the name of the replay it made (result.Config.Replay).
+	Worst   func(c result.Config, records []clock.Record) (string, error)
+	Replays int
 }
 
 // Classifier loads the drill's guess model, or trains a small one on
@@ -141,7 +150,7 @@ func RunVirtual(j Job) (Episode, error) {
 	rc := node.DefaultConfig()
 	cfg := vfleet.Config{Clock: j.Clock, Stale: rc.Stale, Guess: "base", Guesses: j.Guesses, GuessMargin: rc.GuessMargin,
 		World: j.World, Link: vfleet.Link{Hop: d.Hop, Jitter: d.Jitter, Seed: model.Mix(j.World, 5)}, TurnTime: d.TurnTime,
-		Faults: j.Faults, FaultSeed: j.FaultSeed, Wait: d.SoftwareWait()}
+		Faults: j.Faults, FaultSeed: j.FaultSeed, Wait: d.SoftwareWait(), OnFiled: j.OnFiled}
 	f, err := vfleet.New(cfg)
 	if err != nil {
 		return Episode{}, err
@@ -149,6 +158,9 @@ func RunVirtual(j Job) (Episode, error) {
 	rounds, err := f.Run(d.Rounds, nil)
 	if err != nil {
 		return Episode{}, fmt.Errorf("%s, episode %d: %w", j.Point.Name(), j.Episode, err)
+	}
+	if j.OnFiled != nil {
+		f.Finish()
 	}
 	return Episode{Rounds: rounds, Faults: f.FaultStats(), Late: f.Late(), VirtualTime: f.Now(), Paths: f.GuessPaths()}, nil
 }
@@ -327,6 +339,29 @@ feed:
 			rep.ProcessConfigs++
 		}
 		rep.Configs = append(rep.Configs, c)
+	}
+	if o.Worst != nil && !d.Process() {
+		// The configurations that cost most: their worst episode again,
+		// with every round's record (the same seeds replay it exactly).
+		idx := make([]int, len(rep.Configs))
+		for i := range idx {
+			idx[i] = i
+		}
+		slices.SortStableFunc(idx, func(a, b int) int { return cmp.Compare(rep.Configs[b].MeanCost, rep.Configs[a].MeanCost) })
+		for _, i := range idx[:min(len(idx), max(o.Replays, 0))] {
+			c := &rep.Configs[i]
+			j := d.Job(d.Points[i], c.WorstEpisode, guesses)
+			var recs []clock.Record
+			j.OnFiled = func(r clock.Record) { recs = append(recs, r) }
+			if _, err := RunVirtual(j); err != nil {
+				return nil, err
+			}
+			replay, err := o.Worst(*c, recs)
+			if err != nil {
+				return nil, err
+			}
+			c.Replay = replay
+		}
 	}
 	rep.GossipSecondsSpent = gossipTime.Seconds()
 	if o.Now != nil {

@@ -64,6 +64,9 @@ type Config struct {
 	// Wait is how long a robot's software waits for a round's close
 	// before holding (0: (m+2) turn budgets + 10 s, as sim fleet waits).
 	Wait time.Duration
+	// OnFiled, when set, gets every round's decision-log record (as the
+	// coordinator files it), for replays.
+	OnFiled func(clock.Record)
 	// Faults are the drill's message faults (sim/fault), seeded with
 	// FaultSeed, applied to every delivery after Link; Slow faults add to
 	// the robots' turn times. Process faults are refused: they need real
@@ -75,6 +78,7 @@ type Config struct {
 // Fleet is one virtual fleet run.
 type Fleet struct {
 	cfg     Config
+	filed   uint64 // the last round the coordinator filed
 	m       model.Fleet
 	robots  []*robot
 	coord   *clock.Machine
@@ -231,6 +235,21 @@ func (f *Fleet) Run(rounds int, onRound func(fleetsum.Round)) ([]fleetsum.Round,
 	return f.results, nil
 }
 
+// Finish lets the coordinator file the rounds played (their reports are
+// still on the way when Run returns), within a report wait of virtual
+// time, so OnFiled has seen every round. The fleet is not run further.
+func (f *Fleet) Finish() {
+	limit := f.now + 2*f.cfg.Clock.ReportWait + time.Second
+	for f.filed < uint64(len(f.results)) && len(f.q) > 0 {
+		it := heap.Pop(&f.q).(item)
+		if it.at > limit {
+			return
+		}
+		f.now = it.at
+		it.do()
+	}
+}
+
 // begin starts the coordinator and posts every robot's first report.
 func (f *Fleet) begin() {
 	f.coordStep(clock.Begin{Now: f.now})
@@ -334,6 +353,11 @@ func (f *Fleet) coordStep(ev clock.Event) {
 			f.at(a.At, func() { f.coordStep(clock.Tick{Now: f.now}) })
 		case clock.Closed:
 			f.modes[a.Record.Round] = a.Record.Mode
+		case clock.Filed:
+			f.filed = max(f.filed, a.Record.Round)
+			if f.cfg.OnFiled != nil {
+				f.cfg.OnFiled(a.Record)
+			}
 		case clock.Late:
 			// counted by the coordinator's machine
 		}

@@ -33,6 +33,14 @@ type htmlPage struct {
 	Plots   []htmlPlot
 	Faults  []htmlList
 	Events  []htmlList
+	Worst   []htmlWorst
+}
+
+// htmlWorst is a configuration's worst episode and its replay page.
+type htmlWorst struct {
+	Name, Replay string
+	Episode      int
+	Cost         string
 }
 
 type htmlCell struct {
@@ -75,6 +83,9 @@ func (r *Report) page() (*htmlPage, error) {
 		}
 		if len(c.Events) > 0 {
 			p.Events = append(p.Events, htmlList{c.Name, c.Events})
+		}
+		if c.Replay != "" && c.WorstEpisode < len(c.EpisodeCosts) {
+			p.Worst = append(p.Worst, htmlWorst{c.Name, c.Replay, c.WorstEpisode, fmt.Sprintf("%.2f", c.EpisodeCosts[c.WorstEpisode])})
 		}
 	}
 
@@ -196,6 +207,15 @@ footer{font-size:.8rem;color:#666;margin:2em 0 1em}
 </figure>
 {{- end}}
 </div>
+{{- if .Worst}}
+
+<h2>Worst episodes, replayed</h2>
+<ul>
+{{- range .Worst}}
+<li>{{.Name}}: episode {{.Episode}}, cost {{.Cost}} — <a href="{{.Replay}}">replay it round by round</a></li>
+{{- end}}
+</ul>
+{{- end}}
 {{- if .Faults}}
 
 <h2>Fault schedules</h2>

@@ -71,9 +71,12 @@ type Config struct {
 	Latency      Histogram  `json:"latency_hist"`
 	PerRobot     []Robot    `json:"per_robot"`
 	EpisodeCosts []float64  `json:"episode_costs"`
-	WorstEpisode int        `json:"worst_episode"`     // index into EpisodeCosts
-	Process      bool       `json:"process,omitempty"` // run as real processes
-	Events       []string   `json:"events,omitempty"`  // what a process drill did, in order
+	WorstEpisode int        `json:"worst_episode"` // index into EpisodeCosts
+	// Replay is the worst episode's replay page (a file beside the report,
+	// written by sim drill --html; "" when none was made).
+	Replay  string   `json:"replay,omitempty"`
+	Process bool     `json:"process,omitempty"` // run as real processes
+	Events  []string `json:"events,omitempty"`  // what a process drill did, in order
 }
 
 // Histogram of round latencies: Counts[i] rounds took [EdgesMs[i],
