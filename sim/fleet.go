@@ -709,7 +709,9 @@ exactly what the real fleet decides for the same flags: compare decisions_sha256
 			fmt.Printf("fleet %s: %s, %d robots, %s mode, NATS %s, logs in %s\n", o.fleet, m.Name(), m.Robots(), o.clock.Mode, f.url, o.logDir)
 		}
 		if *watch {
-			fmt.Fprintf(os.Stderr, "live view: http://%s/view  (open it in a browser; rounds every %s)\n", f.chttp, o.clock.Period)
+			fmt.Fprintf(os.Stderr, "live view: http://%s/view  (open it in a browser; a round at most every %s)\n", f.chttp, o.clock.Period)
+		} else if !*asJSON {
+			fmt.Printf("live view: http://%s/view  (--view paces the rounds for watching)\n", f.chttp)
 		}
 		t0 = time.Now()
 		for round := 1; round <= rounds && ctx.Err() == nil; round++ {
