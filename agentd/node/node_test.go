@@ -207,8 +207,8 @@ func TestBadInputOverNATS(t *testing.T) {
 	}
 }
 
-// The robot's own software reads its decision and gets "hold" with a
-// reason whenever there is nothing valid to do.
+// The robot's own software reads its decision and gets "hold": true with a
+// reason (and no action) whenever there is nothing valid to do.
 func TestLocalInterface(t *testing.T) {
 	r := newRig(t)
 	srv := httptest.NewServer(r.n.Handler(nil))
@@ -225,6 +225,14 @@ func TestLocalInterface(t *testing.T) {
 	}
 	if v := get("?wait=10ms"); !v.Hold || !strings.Contains(v.Reason, "no round started") {
 		t.Fatalf("before any round: %+v", v)
+	}
+	// A hold names no action: software reading only "action" finds none.
+	if resp, err := http.Get(srv.URL + "/v1/decision?wait=10ms"); err == nil {
+		raw, _ := io.ReadAll(resp.Body)
+		resp.Body.Close()
+		if strings.Contains(string(raw), `"action"`) || strings.Contains(string(raw), `"control"`) || !strings.Contains(string(raw), `"hold":true`) {
+			t.Fatalf("a hold reads %s", raw)
+		}
 	}
 	r.start(1, []uint32{1, 0}, nil) // robot 1 goes first: decides at once
 	if v := get("?round=1&wait=5s"); v.Hold || v.Control != harbor.East || v.Action != "E" || !v.Decided {

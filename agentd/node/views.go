@@ -2,6 +2,7 @@ package node
 
 import (
 	"context"
+	"encoding/json"
 	"errors"
 	"fmt"
 	"time"
@@ -28,6 +29,20 @@ type View struct {
 	RoundLatencyUs uint64 `json:"round_latency_us,omitempty"`
 	// StalledBy: the robot a sequential round waited for in vain.
 	StalledBy *int `json:"stalled_by,omitempty"`
+}
+
+// MarshalJSON leaves control and action out of a hold: software that reads
+// only "action" must find nothing to do when there is no valid decision.
+func (v View) MarshalJSON() ([]byte, error) {
+	type plain View
+	if !v.Hold {
+		return json.Marshal(plain(v))
+	}
+	return json.Marshal(struct {
+		plain
+		Control *int    `json:"control,omitempty"`
+		Action  *string `json:"action,omitempty"`
+	}{plain: plain(v)})
 }
 
 func viewOf(v turn.View) View {

@@ -63,7 +63,8 @@ type Robot struct {
 	// To is where its control takes it (At when it stays or holds).
 	To      model.Point `json:"to"`
 	Control int         `json:"control"`
-	Action  string      `json:"action"`
+	// Action names the control; "" when it held.
+	Action string `json:"action"`
 	// Turn is its place in the order (0 first; -1: not in this round).
 	Turn int `json:"turn"`
 	// Held: no decision this round (it stays); Why says why.
@@ -117,9 +118,11 @@ func FrameOf(m model.Fleet, rec clock.Record) (Frame, error) {
 			rb.Why = heldWhy(rec, r)
 		}
 		rb.To = d.Aim(x, r, c)
-		if names != nil {
+		switch {
+		case rb.Held: // nothing to do: no action is named beside it
+		case names != nil:
 			rb.Action = names.ControlName(x, r, c)
-		} else {
+		default:
 			rb.Action = fmt.Sprintf("control %d", c)
 		}
 		for _, dec := range rec.Decisions {

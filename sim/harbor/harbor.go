@@ -46,7 +46,9 @@ const (
 	numControls
 )
 
-var controlNames = [numControls]string{"hold", "N", "S", "E", "W"}
+// Control 0 is "stay" (stay on the cell): never "hold", which is the
+// runtime's word for "no valid decision".
+var controlNames = [numControls]string{"stay", "N", "S", "E", "W"}
 
 // Direction deltas; y grows northwards.
 var dx = [numControls]int{0, 0, 0, 1, -1}
