@@ -2,6 +2,7 @@ package main
 
 import (
 	"context"
+	"encoding/json"
 	"os"
 	"os/exec"
 	"path/filepath"
@@ -149,5 +150,29 @@ func TestShortSoak(t *testing.T) {
 	// written off the round loop, the coordinator may be a round ahead).
 	if last.Records < 2*200-2 || last.Records > 2*200+4 {
 		t.Fatalf("the durable log holds %d records after 200 rounds", last.Records)
+	}
+}
+
+// The example fleet file runs as a whole fleet, flags on the command line
+// overriding it; agentd takes it with --robot, and its own flags win too.
+func TestFleetFileRuns(t *testing.T) {
+	out, err := exec.Command(simBin, "fleet", "--fleet-file", "../deploy/examples/fleet.yaml", "--rounds", "3", "--period", "0", "--json").Output()
+	if err != nil {
+		t.Fatalf("%v\n%s", err, out)
+	}
+	var sum struct {
+		Scenario string `json:"scenario"`
+		Robots   int    `json:"robots"`
+		Rounds   int    `json:"rounds"`
+		Held     int    `json:"robot_rounds_held"`
+	}
+	if err := json.Unmarshal(out, &sum); err != nil || sum.Scenario != "upkeep" || sum.Robots != 4 || sum.Rounds != 3 || sum.Held != 0 {
+		t.Fatalf("%+v %v", sum, err)
+	}
+	cmd := exec.Command(simBin, "agentd", "--fleet-file", "../deploy/examples/fleet.yaml", "--robot", "1",
+		"--nats", "nats://127.0.0.1:1", "--creds", "", "--tls-ca", "", "--gossip-key-file", "", "--connect-timeout", "1s")
+	b, err := cmd.CombinedOutput()
+	if err == nil || !strings.Contains(string(b), "cannot reach NATS at nats://127.0.0.1:1") {
+		t.Fatalf("agentd with the fleet file and --nats: %v\n%s", err, b)
 	}
 }

@@ -11,6 +11,7 @@ import (
 	"github.com/schollz/progressbar/v3"
 	"golang.org/x/term"
 
+	"baton/deploy/shell"
 	"baton/sim/model"
 	"baton/sim/scenarios"
 )
@@ -47,16 +48,23 @@ func parse(fs *flag.FlagSet, args []string) error {
 type scenarioFlags struct {
 	name, file string
 	robots     int
+	starts     string
 }
 
 func (s *scenarioFlags) register(fs *flag.FlagSet) {
 	fs.StringVar(&s.name, "scenario", "harbor", "scenario: "+strings.Join(scenarios.Names(), " or "))
 	fs.StringVar(&s.file, "config", "", "scenario YAML file (default: the scenario's built-in demo)")
 	fs.Var((*scenarios.Robots)(&s.robots), "robots", scenarios.RobotsUsage)
+	fs.StringVar(&s.starts, "starts", "", scenarios.StartsUsage)
 }
 
 func (s *scenarioFlags) load() (model.Model, error) {
-	return scenarios.Load(s.name, s.file, s.robots)
+	return scenarios.LoadStarts(s.name, s.file, s.robots, s.starts)
+}
+
+// digest is the scenario digest daemons check (shell.DigestStarts).
+func (s *scenarioFlags) digest(robots int) (string, error) {
+	return shell.DigestStarts(s.name, s.file, robots, s.starts)
 }
 
 // parseOrder reads "2,0,1" into a turn order.

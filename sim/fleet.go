@@ -180,6 +180,9 @@ func startFleet(ctx context.Context, o fleetOpts) (*fleetRun, error) {
 		abs, _ := filepath.Abs(o.sc.file)
 		f.common = append(f.common, "--config", abs)
 	}
+	if o.sc.starts != "" {
+		f.common = append(f.common, "--starts", o.sc.starts)
+	}
 	if f.planFile != "" {
 		f.common = append(f.common, "--drill-faults", f.planFile)
 	}
@@ -273,7 +276,7 @@ func (f *fleetRun) replay() (replayResult, error) {
 	if err != nil {
 		return replayResult{}, err
 	}
-	digest, err := shell.Digest(f.o.sc.name, f.o.sc.file, f.m.Robots())
+	digest, err := f.o.sc.digest(f.m.Robots())
 	if err != nil {
 		return replayResult{}, err
 	}
@@ -634,7 +637,12 @@ exactly what the real fleet decides for the same flags: compare decisions_sha256
 	fs.DurationVar(&o.link.Jitter, "jitter", 0, "virtual: plus a uniform random delay in [0, jitter)")
 	fs.Float64Var(&o.link.Loss, "loss", 0, "virtual: probability that a delivery is lost")
 	fs.DurationVar(&o.turnTime, "turn-time", o.turnTime, "virtual: virtual time one rollout turn takes")
+	shell.RegisterFleetFile(fs)
 	watch := fs.Bool("view", false, "print the live view's address (the coordinator's /view: the site, every robot and its move, guesses and holds) and start rounds at most every 300ms (unless --period says otherwise) so the fleet can be watched")
+	args, xerr := shell.ExpandFleetFile(args, shell.RoleSim)
+	if xerr != nil {
+		return xerr
+	}
 	if err := parse(fs, args); err != nil {
 		return err
 	}
@@ -761,6 +769,9 @@ exactly what the real fleet decides for the same flags: compare decisions_sha256
 		if o.sc.file != "" {
 			replayArgs = append(replayArgs, "--config", o.sc.file)
 		}
+		if o.sc.starts != "" {
+			replayArgs = append(replayArgs, "--starts", strconv.Quote(o.sc.starts))
+		}
 		fmt.Printf("durable log (JetStream stream, exported) %s; replay: sim replay %s\n", sum.DurableLog, strings.Join(replayArgs, " "))
 	}
 	fmt.Printf("decisions sha256 %s\n", sum.DecisionsSHA256)
@@ -780,7 +791,7 @@ func startVirtual(o fleetOpts) (*vfleet.Fleet, error) {
 	if err != nil {
 		return nil, err
 	}
-	digest, err := shell.Digest(o.sc.name, o.sc.file, m.Robots())
+	digest, err := o.sc.digest(m.Robots())
 	if err != nil {
 		return nil, err
 	}

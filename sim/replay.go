@@ -309,7 +309,7 @@ state and controls, and compares it with the logged one.
 	if !ok {
 		return fmt.Errorf("scenario %s cannot run as a fleet", m0.Name())
 	}
-	digest, err := shell.Digest(sc.name, sc.file, m.Robots())
+	digest, err := sc.digest(m.Robots())
 	if err != nil {
 		return err
 	}

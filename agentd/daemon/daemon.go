@@ -57,8 +57,14 @@ func MainWith(args []string, hooks shell.Hooks) int {
 	gossip := fs.String("gossip", "127.0.0.1:0", "gossip bind host:port (port 0 picks one)")
 	join := fs.String("join", "", "gossip address(es) of the coordinator or any member, comma-separated")
 	guessModel := fs.String("guess-model", "", "trained guess model file (signal/learn) for learned guesses; without one they are base guesses until the fleet distributes one")
+	robotName := fs.String("robot-name", "", "this robot's name (the fleet file's), shown in the logs")
 	if hooks.Flags != nil {
 		hooks.Flags(fs)
+	}
+	args, err := shell.ExpandFleetFile(args, shell.RoleAgentd)
+	if err != nil {
+		fmt.Fprintln(os.Stderr, "agentd:", err)
+		return 2
 	}
 	if code, ok := shell.Parse(fs, synopsis, args); !ok {
 		return code
@@ -177,7 +183,7 @@ func MainWith(args []string, hooks shell.Hooks) int {
 			stop()
 		}
 	}()
-	lg.Info("agentd up", zap.Int("robot", *robot), zap.String("fleet", c.Fleet), zap.String("scenario", m.Name()),
+	lg.Info("agentd up", zap.Int("robot", *robot), zap.String("name", *robotName), zap.String("fleet", c.Fleet), zap.String("scenario", m.Name()),
 		zap.String("http", ln.Addr().String()), zap.String("nats", nc.ConnectedUrl()), zap.String("digest", fl.Digest))
 	err = n.Run(ctx)
 	sctx, cancel := context.WithTimeout(context.Background(), 2*time.Second)

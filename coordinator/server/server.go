@@ -65,6 +65,11 @@ func MainWith(args []string, hooks shell.Hooks) int {
 	if hooks.Flags != nil {
 		hooks.Flags(fs)
 	}
+	args, err := shell.ExpandFleetFile(args, shell.RoleCoordinator)
+	if err != nil {
+		fmt.Fprintln(os.Stderr, "coordinator:", err)
+		return 2
+	}
 	if code, ok := shell.Parse(fs, synopsis, args); !ok {
 		return code
 	}

@@ -25,6 +25,7 @@ type Common struct {
 	TLSCA, TLSCert, TLSKey     string
 	Scenario, Config           string
 	Robots                     int
+	Starts                     string
 	ConnectTimeout             time.Duration
 	LogLevel                   string
 	LogJSON                    bool
@@ -32,6 +33,7 @@ type Common struct {
 
 // Register adds the shared flags to fs; configHelp says whose file must match.
 func (c *Common) Register(fs *flag.FlagSet, configHelp string) {
+	RegisterFleetFile(fs)
 	fs.StringVar(&c.NATS, "nats", "nats://127.0.0.1:4222", "NATS server URL list, comma-separated")
 	fs.StringVar(&c.Creds, "creds", "", "NATS credentials file")
 	fs.StringVar(&c.TLSCA, "tls-ca", "", "CA certificate (PEM) to verify the NATS servers with; turns TLS on")
@@ -43,6 +45,7 @@ func (c *Common) Register(fs *flag.FlagSet, configHelp string) {
 	fs.StringVar(&c.Scenario, "scenario", "harbor", "scenario: "+strings.Join(scenarios.Names(), " or "))
 	fs.StringVar(&c.Config, "config", "", "scenario YAML file (default: the built-in demo); "+configHelp)
 	fs.Var((*scenarios.Robots)(&c.Robots), "robots", scenarios.RobotsUsage)
+	fs.StringVar(&c.Starts, "starts", "", scenarios.StartsUsage)
 	fs.DurationVar(&c.ConnectTimeout, "connect-timeout", 30*time.Second, "keep retrying an unreachable NATS server this long")
 	fs.StringVar(&c.LogLevel, "log-level", "info", "debug, info, warn or error")
 	fs.BoolVar(&c.LogJSON, "log-json", false, "log JSON lines")
@@ -78,7 +81,7 @@ type Fleet struct {
 
 // Load builds the scenario, the subjects and the digest.
 func (c *Common) Load() (Fleet, error) {
-	m, err := scenarios.Load(c.Scenario, c.Config, c.Robots)
+	m, err := scenarios.LoadStarts(c.Scenario, c.Config, c.Robots, c.Starts)
 	if err != nil {
 		return Fleet{}, err
 	}
@@ -90,7 +93,7 @@ func (c *Common) Load() (Fleet, error) {
 	if err != nil {
 		return Fleet{}, err
 	}
-	digest, err := Digest(c.Scenario, c.Config, m.Robots())
+	digest, err := DigestStarts(c.Scenario, c.Config, m.Robots(), c.Starts)
 	if err != nil {
 		return Fleet{}, err
 	}
@@ -151,4 +154,10 @@ func (c *Common) TLSOptions() ([]nats.Option, error) {
 		opts = append(opts, nats.ClientCert(c.TLSCert, c.TLSKey))
 	}
 	return opts, nil
+}
+
+// RegisterFleetFile adds --fleet-file, for help and to accept it: the file
+// is read before the flags are parsed (ExpandFleetFile).
+func RegisterFleetFile(fs *flag.FlagSet) {
+	fs.String("fleet-file", "", "the fleet's file (YAML: deploy/examples/fleet.yaml) giving the fleet, NATS, scenario, robots, rounds, guesses and logs; flags given here override it")
 }

@@ -363,6 +363,12 @@ func AliveRobots(ml *memberlist.Memberlist, fleet string) []int {
 // built-in demo's name) and the robot count, so robots started with a
 // different file refuse the round.
 func Digest(scenario, file string, robots int) (string, error) {
+	return DigestStarts(scenario, file, robots, "")
+}
+
+// DigestStarts is Digest with per-robot start positions (--starts; "":
+// the file's, and the same digest as Digest).
+func DigestStarts(scenario, file string, robots int, starts string) (string, error) {
 	h := sha256.New()
 	fmt.Fprintf(h, "%s\x00%d\x00", scenario, robots)
 	if file == "" {
@@ -373,6 +379,9 @@ func Digest(scenario, file string, robots int) (string, error) {
 			return "", fmt.Errorf("scenario file: %w", err)
 		}
 		h.Write(data)
+	}
+	if starts != "" {
+		fmt.Fprintf(h, "\x00starts\x00%s", starts)
 	}
 	return hex.EncodeToString(h.Sum(nil))[:16], nil
 }

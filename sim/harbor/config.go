@@ -227,3 +227,14 @@ func binom(n, k int) int {
 	}
 	return r
 }
+
+// WithStarts is m with boat r launching from cell starts[r] = {x, y}, one
+// per boat.
+func WithStarts(m *Model, starts [][2]int) (*Model, error) {
+	cfg := m.Config()
+	cfg.Starts, cfg.Scatter = starts, false
+	if err := cfg.Validate(nil); err != nil {
+		return nil, err
+	}
+	return newModel(cfg), nil
+}

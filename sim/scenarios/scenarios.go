@@ -91,3 +91,48 @@ func (r *Robots) Set(s string) error {
 
 // RobotsUsage is the --robots flag's help.
 const RobotsUsage = "number of robots (default: the file's or demo's own)"
+
+// LoadStarts is Load with each robot's start position given: starts is
+// ';'-separated, one per robot, in the scenario's own terms (harbor: a
+// cell "x,y"; upkeep: a site name). "" keeps the file's or demo's starts.
+func LoadStarts(name, file string, robots int, starts string) (model.Model, error) {
+	m, err := Load(name, file, robots)
+	if err != nil || strings.TrimSpace(starts) == "" {
+		return m, err
+	}
+	parts := strings.Split(starts, ";")
+	for i := range parts {
+		parts[i] = strings.TrimSpace(parts[i])
+	}
+	if len(parts) != m.Robots() {
+		return nil, fmt.Errorf("--starts %q: %d start positions for %d robots", starts, len(parts), m.Robots())
+	}
+	switch m := m.(type) {
+	case *harbor.Model:
+		cells := make([][2]int, len(parts))
+		for r, p := range parts {
+			xs, ys, ok := strings.Cut(p, ",")
+			x, errX := strconv.Atoi(strings.TrimSpace(xs))
+			y, errY := strconv.Atoi(strings.TrimSpace(ys))
+			if !ok || errX != nil || errY != nil {
+				return nil, fmt.Errorf("--starts: robot %d: %q is not a cell x,y", r, p)
+			}
+			cells[r] = [2]int{x, y}
+		}
+		out, err := harbor.WithStarts(m, cells)
+		if err != nil {
+			return nil, fmt.Errorf("--starts: %w", err)
+		}
+		return out, nil
+	case *upkeep.Model:
+		out, err := m.WithStarts(parts)
+		if err != nil {
+			return nil, fmt.Errorf("--starts: %w", err)
+		}
+		return out, nil
+	}
+	return nil, fmt.Errorf("--starts: scenario %s takes no start positions", name)
+}
+
+// StartsUsage documents --starts.
+const StartsUsage = "each robot's start position, ';'-separated (harbor: cells x,y; upkeep: site names); default: the scenario file's"

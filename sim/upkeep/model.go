@@ -5,6 +5,7 @@ import (
 	"fmt"
 	"math"
 	"math/rand/v2"
+	"slices"
 
 	"baton/sim/model"
 )
@@ -489,4 +490,22 @@ func (m *Model) Positions(s model.State) []int { return s.(*State).pos }
 // do not modify it.
 func (m *Model) Belief(s model.State, site int) []float64 {
 	return s.(*State).bel[site*m.k : (site+1)*m.k]
+}
+
+// WithStarts is m with robot r starting at site starts[r] (by name), one
+// per robot; the model itself is shared (it is read-only).
+func (m *Model) WithStarts(starts []string) (*Model, error) {
+	if len(starts) != m.robots {
+		return nil, fmt.Errorf("%d start sites for %d robots", len(starts), m.robots)
+	}
+	out := *m
+	out.startPos = make([]int, len(starts))
+	for r, name := range starts {
+		i := slices.Index(m.names, name)
+		if i < 0 {
+			return nil, fmt.Errorf("robot %d: no site named %q", r, name)
+		}
+		out.startPos[r] = i
+	}
+	return &out, nil
 }
