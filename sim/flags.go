@@ -26,7 +26,7 @@ func newFlags(name, synopsis string) *flag.FlagSet {
 	fs := flag.NewFlagSet("sim "+name, flag.ContinueOnError)
 	fs.Usage = func() {
 		fmt.Fprintf(fs.Output(), "usage: sim %s [flags]\n\n%s\n\nscenarios:\n%s\nflags:\n", name, synopsis, scenarios.Help())
-		fs.PrintDefaults()
+		shell.PrintDefaults(fs)
 	}
 	return fs
 }

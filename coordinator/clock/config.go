@@ -154,7 +154,9 @@ func (c Config) order(m int) []int {
 // (RegisterSeed), `sim fleet`'s the run seed it derives the fleet seed from.
 func (c *Config) RegisterFlags(fs *flag.FlagSet) {
 	c.Decide.RegisterFlags(fs)
-	fs.Var(modeFlag{c}, "mode", "sequential, parallel, hybrid, or auto (hybrid that switches to parallel while measured links cannot fit a sequential round in --period)")
+	fs.Var(modeFlag{c}, "mode", "how robots take turns in a round: sequential (one after another, each knowing its predecessors' choices; a late robot stalls the rest), "+
+		"parallel (all at once, each guessing its predecessors), hybrid (in turn, but a robot whose predecessors have not been heard by its deadline guesses them), "+
+		"or auto (hybrid that switches to parallel while measured links cannot fit a sequential round in --period)")
 	fs.StringVar(&c.Guess, "guess", c.Guess, "the fleet's guess source for missing predecessors: "+strings.Join(signal.Names(), ", "))
 	fs.DurationVar(&c.TurnBudget, "turn-deadline", c.TurnBudget, "time each turn gets; turn k is due (k+1) x this after the round starts")
 	fs.DurationVar(&c.Period, "period", c.Period, "start rounds at most this often (0: as soon as the previous round's reports are in)")

@@ -236,8 +236,12 @@ func MainWith(args []string, hooks shell.Hooks) int {
 			return fail(fmt.Errorf("--guess-model: %w", err))
 		}
 		go pub.watch(ctx)
-	} else if cfg.Guess == "learned" {
-		lg.Warn("--guess learned without --guess-model: robots guess with whatever model they were started with, or the base policy")
+	} else if cfg.Guess == "learned" || cfg.Guess == "checked" {
+		const msg = "without --guess-model: robots guess with whatever model they were started with, or the base policy (train one: sim train --out FILE)"
+		lg.Warn("--guess " + cfg.Guess + " " + msg)
+		if !c.LogJSON {
+			fmt.Fprintf(os.Stderr, "coordinator: warning: --guess %s %s\n", cfg.Guess, msg)
+		}
 	}
 	if err := hb.Run(ctx); err != nil && !errors.Is(err, context.Canceled) {
 		return fail(err)

@@ -5,6 +5,7 @@ import (
 	"flag"
 	"fmt"
 	"os"
+	"regexp"
 	"strings"
 	"time"
 
@@ -57,7 +58,7 @@ func (c *Common) Register(fs *flag.FlagSet, configHelp string) {
 func Parse(fs *flag.FlagSet, synopsis string, args []string) (int, bool) {
 	fs.Usage = func() {
 		fmt.Fprint(fs.Output(), synopsis+"\nflags:\n")
-		fs.PrintDefaults()
+		PrintDefaults(fs)
 	}
 	if err := fs.Parse(args); err != nil {
 		if errors.Is(err, flag.ErrHelp) {
@@ -161,3 +162,16 @@ func (c *Common) TLSOptions() ([]nats.Option, error) {
 func RegisterFleetFile(fs *flag.FlagSet) {
 	fs.String("fleet-file", "", "the fleet's file (YAML: deploy/examples/fleet.yaml) giving the fleet, NATS, scenario, robots, rounds, guesses and logs; flags given here override it")
 }
+
+// PrintDefaults is fs.PrintDefaults with every flag spelt as the docs spell
+// it, --name (Go's flag package takes both; its help shows -name).
+func PrintDefaults(fs *flag.FlagSet) {
+	var b strings.Builder
+	out := fs.Output()
+	fs.SetOutput(&b)
+	fs.PrintDefaults()
+	fs.SetOutput(out)
+	fmt.Fprint(out, flagLine.ReplaceAllString(b.String(), "  --"))
+}
+
+var flagLine = regexp.MustCompile(`(?m)^  -`)
