@@ -659,7 +659,7 @@ exactly what the real fleet decides for the same flags: compare decisions_sha256
 	if (o.clock.Guess == "learned" || o.clock.Guess == "checked") && o.guessModel == "" {
 		fmt.Fprintf(os.Stderr, "sim fleet: warning: --guess %s without --guess-model: the robots have no model and guess with the base policy (train one: sim train --out FILE)\n", o.clock.Guess)
 	}
-		if *watch && o.virtual {
+	if *watch && o.virtual {
 		return errors.New("--view shows a fleet of processes (the coordinator serves it); for the virtual fleet, replay its log: sim replay --view")
 	}
 	if *watch && !periodSet {
