@@ -743,6 +743,7 @@ exactly what the real fleet decides for the same flags: compare decisions_sha256
 		f.close()
 	}
 	sum.Batches = w.Batch
+	sum.CostKind = fleetsum.CostKind(w.M.Name())
 	tally.Finish(&sum)
 	interrupted := ctx.Err() != nil
 	if *asJSON {
@@ -754,6 +755,7 @@ exactly what the real fleet decides for the same flags: compare decisions_sha256
 		return fmt.Errorf("%w after %d of %d rounds", errInterrupted, sum.Rounds, rounds)
 	}
 	fmt.Printf("\n%d rounds, total cost %.2f (%.3f per round), %d batches of slicks or tasks finished\n", sum.Rounds, sum.Cost, sum.CostPerRound, sum.Batches)
+	fmt.Printf("cost: %s\n", sum.CostKind)
 	fmt.Printf("round latency p50 %.2f ms, p99 %.2f ms; turns decided with guesses %d; robot-rounds held %d\n",
 		sum.LatencyP50Ms, sum.LatencyP99Ms, sum.TurnsGuessed, sum.RobotsHeld)
 	fmt.Printf("%.1f rounds per second of wall time", sum.RoundsPerSecond)

@@ -59,6 +59,25 @@ type Report struct {
 	Horizon  int      `json:"rollout_horizon"`
 	Policies []Row    `json:"policies"`
 	Skipped  []string `json:"skipped,omitempty"`
+	// CostKind says what mean_cost is.
+	CostKind string `json:"cost_kind"`
+}
+
+// CostKind is what an episode's cost is in a comparison of m.
+func CostKind(m model.Model) string {
+	sum := "sum of stage costs per episode (no discount)"
+	if d := m.Discount(); d < 1 {
+		sum = fmt.Sprintf("discounted sum of stage costs per episode (factor %g)", d)
+	}
+	return fmt.Sprintf("%s, %s; mean over episodes", sum, stageKind(m.Name()))
+}
+
+// stageKind says what a scenario's stage cost is.
+func stageKind(scenario string) string {
+	if scenario == "upkeep" {
+		return "each stage cost the expectation over the belief of wear"
+	}
+	return "each stage cost that of the simulated state"
 }
 
 // Run plays every policy on episodes 0..Episodes-1 of the run seed.
@@ -76,7 +95,7 @@ func Run(m model.Model, o Options) (*Report, error) {
 		return nil, err
 	}
 	d := decide.New(m, o.Decide)
-	rep := &Report{Scenario: m.Name(), Robots: m.Robots(), Episodes: o.Episodes, Seed: o.Seed,
+	rep := &Report{Scenario: m.Name(), Robots: m.Robots(), Episodes: o.Episodes, Seed: o.Seed, CostKind: CostKind(m),
 		Samples: d.Config().Samples, Horizon: d.Config().Horizon}
 	var run []string
 	for _, name := range o.Policies {
@@ -176,4 +195,5 @@ func (r *Report) WriteTable(w io.Writer) {
 	for _, s := range r.Skipped {
 		fmt.Fprintln(w, s)
 	}
+	fmt.Fprintf(w, "\ncost: %s\n", r.CostKind)
 }

@@ -39,13 +39,15 @@ func (r Round) Controls() []int {
 
 // Summary is a fleet run's summary (`sim fleet --json`).
 type Summary struct {
-	Scenario     string  `json:"scenario"`
-	Robots       int     `json:"robots"`
-	Rounds       int     `json:"rounds"`
-	Mode         string  `json:"mode"`
-	Guess        string  `json:"guess"`
-	Virtual      bool    `json:"virtual"`
-	Cost         float64 `json:"cost"`
+	Scenario string  `json:"scenario"`
+	Robots   int     `json:"robots"`
+	Rounds   int     `json:"rounds"`
+	Mode     string  `json:"mode"`
+	Guess    string  `json:"guess"`
+	Virtual  bool    `json:"virtual"`
+	Cost     float64 `json:"cost"`
+	// CostKind says what Cost is (see CostKind).
+	CostKind     string  `json:"cost_kind"`
 	CostPerRound float64 `json:"cost_per_round"`
 	Batches      int     `json:"batches_finished"`
 	LatencyP50Ms float64 `json:"round_latency_p50_ms"`
@@ -113,4 +115,13 @@ func Quantile(xs []float64, q float64) float64 {
 	s := append([]float64(nil), xs...)
 	sort.Float64s(s)
 	return s[int(q*float64(len(s)-1)+0.5)]
+}
+
+// CostKind says what a fleet run's cost is for a scenario: the world's
+// stage costs summed without discount.
+func CostKind(scenario string) string {
+	if scenario == "upkeep" {
+		return "undiscounted sum of stage costs, each the expectation over the belief of wear (the simulator draws a site's level only when a robot sees it)"
+	}
+	return "undiscounted sum of the simulated world's stage costs"
 }
