@@ -43,7 +43,32 @@ func FeaturizerFor(m model.Model) (Featurizer, error) {
 	case *upkeep.Model:
 		return newUpkeepFeatures(sm), nil
 	}
-	return nil, fmt.Errorf("learn: no features for scenario %q (known: harbor, upkeep)", m.Name())
+	if f, ok := registered[m.Name()]; ok {
+		return f(m)
+	}
+	return nil, fmt.Errorf("learn: no features for scenario %q (known: harbor, upkeep%s; a scenario of your own registers them with learn.RegisterFeatures)",
+		m.Name(), registeredNames())
+}
+
+// registered are the features of scenarios registered from outside.
+var registered = map[string]func(model.Model) (Featurizer, error){}
+
+// RegisterFeatures gives learned guesses for scenario name (registered
+// with sim/scenarios.Register): f builds the Featurizer for an instance.
+// Call it before any command runs; a name registered twice panics.
+func RegisterFeatures(name string, f func(model.Model) (Featurizer, error)) {
+	if _, taken := registered[name]; taken || name == "harbor" || name == "upkeep" {
+		panic(fmt.Sprintf("learn: features for %q registered twice", name))
+	}
+	registered[name] = f
+}
+
+func registeredNames() string {
+	var s string
+	for n := range registered {
+		s += ", " + n
+	}
+	return s
 }
 
 // posSlots is the one-hot width of the turn position: 0, 1, 2 and "3 or

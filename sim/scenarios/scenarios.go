@@ -19,6 +19,43 @@ type loader struct {
 	help string
 }
 
+// Scenario is what an integrator's own module registers to run its own
+// problem with Baton's commands (see Register).
+type Scenario struct {
+	// Default builds the built-in instance for robots robots (0: its own
+	// count); it is what runs without --config.
+	Default func(robots int) (model.Model, error)
+	// Load builds an instance from a file (--config); nil: no files.
+	Load func(path string, robots int) (model.Model, error)
+	// Help is a one-line description for the commands' help.
+	Help string
+}
+
+// Register adds a scenario under name, before any command runs (an init
+// function of the integrator's package, say). Its models must implement
+// model.Model; to run as a fleet, model.Fleet; to be drawn in the fleet
+// view, model.Drawer; for learned guesses, register features with
+// learn.RegisterFeatures. It panics on a name taken or an empty Default,
+// which are programming errors.
+func Register(name string, s Scenario) {
+	if name == "" || strings.ContainsAny(name, " \t,;") {
+		panic(fmt.Sprintf("scenarios: bad name %q", name))
+	}
+	if _, taken := registry[name]; taken {
+		panic(fmt.Sprintf("scenarios: %q registered twice", name))
+	}
+	if s.Default == nil {
+		panic(fmt.Sprintf("scenarios: %q has no Default", name))
+	}
+	l := loader{def: s.Default, file: s.Load, help: s.Help}
+	if l.file == nil {
+		l.file = func(path string, _ int) (model.Model, error) {
+			return nil, fmt.Errorf("scenario %s reads no files (--config %s)", name, path)
+		}
+	}
+	registry[name] = l
+}
+
 var registry = map[string]loader{
 	"harbor": {
 		def:  func(r int) (model.Model, error) { return harbor.Default(r) },
