@@ -279,13 +279,8 @@ state and controls, and compares it with the logged one.
 	sc.register(fs)
 	file := fs.String("file", "", "read the log from this file (JSON lines) instead of a stream")
 	var c shell.Common
-	fs.StringVar(&c.NATS, "nats", "", "read the fleet's durable log from this NATS server (URL list, comma-separated)")
-	fs.StringVar(&c.Creds, "creds", "", "NATS credentials file (the coordinator's, or any allowed to read the stream)")
-	fs.StringVar(&c.TLSCA, "tls-ca", "", "CA certificate (PEM) to verify the NATS servers with; turns TLS on")
-	fs.StringVar(&c.TLSCert, "tls-cert", "", "client certificate (PEM), with --tls-key")
-	fs.StringVar(&c.TLSKey, "tls-key", "", "client certificate's key (PEM)")
-	fs.StringVar(&c.Fleet, "fleet", "demo", "fleet id")
-	fs.StringVar(&c.Prefix, "prefix", "baton", "NATS subject prefix")
+	c.RegisterBus(fs, "", "read the fleet's durable log from this NATS server (URL list, comma-separated)",
+		"NATS credentials file (the coordinator's, or any allowed to read the stream)")
 	export := fs.String("export", "", "with --nats: also write every record as stored to this file (replay it later with --file)")
 	asJSON := fs.Bool("json", false, "print the result as one JSON object")
 	rounds := fs.Bool("rounds", false, "print every round (round, run, controls, held, stage cost)")

@@ -35,14 +35,8 @@ type Common struct {
 // Register adds the shared flags to fs; configHelp says whose file must match.
 func (c *Common) Register(fs *flag.FlagSet, configHelp string) {
 	RegisterFleetFile(fs)
-	fs.StringVar(&c.NATS, "nats", "nats://127.0.0.1:4222", "NATS server URL list, comma-separated")
-	fs.StringVar(&c.Creds, "creds", "", "NATS credentials file")
-	fs.StringVar(&c.TLSCA, "tls-ca", "", "CA certificate (PEM) to verify the NATS servers with; turns TLS on")
-	fs.StringVar(&c.TLSCert, "tls-cert", "", "client certificate (PEM) for NATS servers that verify clients (with --tls-key)")
-	fs.StringVar(&c.TLSKey, "tls-key", "", "client certificate's key (PEM)")
+	c.RegisterBus(fs, "nats://127.0.0.1:4222", "NATS server URL list, comma-separated", "NATS credentials file")
 	fs.StringVar(&c.GossipKeyFile, "gossip-key-file", "", "encrypt gossip with this key (base64 of 16, 24 or 32 bytes; the same for the whole fleet)")
-	fs.StringVar(&c.Fleet, "fleet", "demo", "fleet id")
-	fs.StringVar(&c.Prefix, "prefix", "baton", "NATS subject prefix")
 	fs.StringVar(&c.Scenario, "scenario", "harbor", "scenario: "+strings.Join(scenarios.Names(), " or "))
 	fs.StringVar(&c.Config, "config", "", "scenario YAML file (default: the built-in demo); "+configHelp)
 	fs.Var((*scenarios.Robots)(&c.Robots), "robots", scenarios.RobotsUsage)
@@ -50,6 +44,18 @@ func (c *Common) Register(fs *flag.FlagSet, configHelp string) {
 	fs.DurationVar(&c.ConnectTimeout, "connect-timeout", 30*time.Second, "keep retrying an unreachable NATS server this long")
 	fs.StringVar(&c.LogLevel, "log-level", "info", "debug, info, warn or error")
 	fs.BoolVar(&c.LogJSON, "log-json", false, "log JSON lines")
+}
+
+// RegisterBus adds the flags that reach a fleet on the bus: --nats (with
+// its default and help), --creds, TLS, --fleet and --prefix.
+func (c *Common) RegisterBus(fs *flag.FlagSet, nats, natsHelp, credsHelp string) {
+	fs.StringVar(&c.NATS, "nats", nats, natsHelp)
+	fs.StringVar(&c.Creds, "creds", "", credsHelp)
+	fs.StringVar(&c.TLSCA, "tls-ca", "", "CA certificate (PEM) to verify the NATS servers with; turns TLS on")
+	fs.StringVar(&c.TLSCert, "tls-cert", "", "client certificate (PEM) for NATS servers that verify clients (with --tls-key)")
+	fs.StringVar(&c.TLSKey, "tls-key", "", "client certificate's key (PEM)")
+	fs.StringVar(&c.Fleet, "fleet", "demo", "fleet id")
+	fs.StringVar(&c.Prefix, "prefix", "baton", "NATS subject prefix")
 }
 
 // Parse parses a daemon's flags with its synopsis as help. It returns

@@ -7,7 +7,6 @@ import (
 	"testing"
 	"time"
 
-	"github.com/nats-io/nats-server/v2/server"
 	"github.com/nats-io/nats.go"
 )
 
@@ -75,20 +74,7 @@ func TestJournal(t *testing.T) {
 }
 
 func TestJournalWithoutJetStream(t *testing.T) {
-	ns, err := server.NewServer(&server.Options{Host: "127.0.0.1", Port: server.RANDOM_PORT, NoSigs: true, NoLog: true})
-	if err != nil {
-		t.Fatal(err)
-	}
-	go ns.Start()
-	if !ns.ReadyForConnections(5 * time.Second) {
-		t.Fatal("no server")
-	}
-	defer ns.Shutdown()
-	nc, err := nats.Connect(ns.ClientURL())
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer nc.Close()
+	nc := noJetStreamServer(t)
 	ctx, cancel := context.WithTimeout(context.Background(), 10*time.Second)
 	defer cancel()
 	if _, err := OpenJournal(ctx, nc, "baton", "yard", JournalOptions{}); err != ErrNoJetStream {

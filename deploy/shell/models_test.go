@@ -46,7 +46,9 @@ func TestModelStore(t *testing.T) {
 	}
 }
 
-func TestModelStoreWithoutJetStream(t *testing.T) {
+// noJetStreamServer is a connection to a server without JetStream.
+func noJetStreamServer(t *testing.T) *nats.Conn {
+	t.Helper()
 	ns, err := server.NewServer(&server.Options{Host: "127.0.0.1", Port: server.RANDOM_PORT, NoSigs: true, NoLog: true})
 	if err != nil {
 		t.Fatal(err)
@@ -55,12 +57,17 @@ func TestModelStoreWithoutJetStream(t *testing.T) {
 	if !ns.ReadyForConnections(5 * time.Second) {
 		t.Fatal("no server")
 	}
-	defer ns.Shutdown()
+	t.Cleanup(ns.Shutdown)
 	nc, err := nats.Connect(ns.ClientURL())
 	if err != nil {
 		t.Fatal(err)
 	}
-	defer nc.Close()
+	t.Cleanup(nc.Close)
+	return nc
+}
+
+func TestModelStoreWithoutJetStream(t *testing.T) {
+	nc := noJetStreamServer(t)
 	ctx, cancel := context.WithTimeout(context.Background(), 10*time.Second)
 	defer cancel()
 	if err := PublishModel(ctx, nc, "b", 1, []byte("x")); err == nil || !strings.Contains(err.Error(), "JetStream") {
