@@ -85,8 +85,7 @@ policy and fault-free sequential rollout.
 	o.Progress = progress("fleet runs")
 	var replays []string // written beside the page; removed if the drill fails
 	if *htmlOut != "" {
-		fm, ok := d.Model.(model.Fleet)
-		if ok && *replaysN > 0 {
+		if fm := d.Model; *replaysN > 0 {
 			o.Replays = *replaysN
 			base := strings.TrimSuffix(*htmlOut, filepath.Ext(*htmlOut))
 			o.Worst = func(c result.Config, recs []clock.Record) (string, error) {

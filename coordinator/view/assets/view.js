@@ -75,10 +75,13 @@
     }
     const k = U / unit;
     const grid = map.kind === 'grid';
-    const padL = (grid ? 0.75 : 0.8) * unit, padR = 0.8 * unit;
-    const padT = (map.flow ? 1.25 : 0.8) * unit, padB = (grid ? 0.75 : 1.0) * unit;
+    // Marks (and the margins that hold the labels) grow on a very large
+    // map so they stay readable; then they may spill over a cell.
+    const M = Math.max(U, (Math.max(maxX - minX, maxY - minY) * k) / 28);
+    const pu = M / k;
+    const padL = (grid ? 0.75 : 0.8) * pu, padR = 0.8 * pu;
+    const padT = (map.flow ? 1.25 : 0.8) * pu, padB = (grid ? 0.75 : 1.0) * pu;
     const w = (maxX - minX + padL + padR) * k, h = (maxY - minY + padT + padB) * k;
-    const M = Math.max(U, Math.max(w, h) / 30);
     return {
       U, M, w, h, grid,
       x: (x) => (x - minX + padL) * k,
@@ -135,7 +138,7 @@
   }
 
   function slickMark(M, count) {
-    const s = count > 1 ? Math.min(1.5, 1 + 0.15 * (count - 1)) : 1;
+    const s = count > 1 ? Math.min(1.2, 1 + 0.1 * (count - 1)) : 1;
     let out = `<path class="slick-body" d="${blob(M)}" transform="scale(${s})" stroke-width="${0.04 * M}"/>`;
     if (count > 1) out += `<text class="slick-n" y="${0.1 * M}" font-size="${0.3 * M}" stroke-width="${0.08 * M}">×${count}</text>`;
     return out;
@@ -193,6 +196,7 @@
     let bg = `<defs><marker id="ah" viewBox="0 0 10 10" refX="7" refY="5" markerWidth="4" markerHeight="4" orient="auto" markerUnits="strokeWidth">` +
       `<path d="M0,0L10,5L0,10Z" class="arrow-head"/></marker></defs>`;
     const map = site.map || {};
+    let labels = '';
     if (g.grid) {
       const W = map.width, H = map.height;
       const x0 = g.x(-0.5), x1 = g.x(W - 0.5), y0 = g.y(H - 0.5), y1 = g.y(-0.5);
@@ -208,19 +212,19 @@
         let ch = '';
         for (let x = every / 2; x < W; x += every) {
           for (let y = every / 2; y < H; y += every) {
-            ch += `<g transform="translate(${n2(g.x(x - 0.5))},${n2(g.y(y - 0.5))})">${flowArrow(map.flow, 0.6 * g.U, 0.5 * g.U)}</g>`;
+            ch += `<g transform="translate(${n2(g.x(x - 0.5))},${n2(g.y(y - 0.5))})">${flowArrow(map.flow, 0.6 * M, 0.5 * M)}</g>`;
           }
         }
         bg += `<g class="flow faint">${ch}</g>`;
-        const lx = x1 - 1.1 * g.U, ly = y0 - 0.62 * g.U;
-        bg += `<g class="flow"><g transform="translate(${n2(lx)},${n2(ly)})">${flowArrow(map.flow, 1.3 * g.U, 0.8 * g.U)}</g>` +
-          `<text class="flow-label" x="${n2(lx - 0.9 * g.U)}" y="${n2(ly + 0.12 * g.U)}" font-size="${0.32 * g.U}">current ${esc(map.flow)}</text></g>`;
+        const lx = x1 - 1.1 * M, ly = y0 - 0.62 * M;
+        bg += `<g class="flow"><g transform="translate(${n2(lx)},${n2(ly)})">${flowArrow(map.flow, 1.3 * M, 0.8 * M)}</g>` +
+          `<text class="flow-label" x="${n2(lx - 0.9 * M)}" y="${n2(ly + 0.12 * M)}" font-size="${0.32 * M}">current ${esc(map.flow)}</text></g>`;
       }
       // Cell numbers along two edges, for reading positions.
-      const fs = 0.28 * g.U;
+      const fs = 0.28 * M;
       let t = '';
-      for (let x = 0; x < W; x += step) t += `<text x="${n2(g.x(x))}" y="${n2(y1 + 0.42 * g.U)}" font-size="${fs}">${x}</text>`;
-      for (let y = 0; y < H; y += step) t += `<text x="${n2(x0 - 0.38 * g.U)}" y="${n2(g.y(y) + fs * 0.35)}" font-size="${fs}">${y}</text>`;
+      for (let x = 0; x < W; x += step) t += `<text x="${n2(g.x(x))}" y="${n2(y1 + 0.42 * M)}" font-size="${fs}">${x}</text>`;
+      for (let y = 0; y < H; y += step) t += `<text x="${n2(x0 - 0.38 * M)}" y="${n2(g.y(y) + fs * 0.35)}" font-size="${fs}">${y}</text>`;
       bg += `<g class="axis">${t}</g>`;
     } else {
       bg += `<rect class="land" x="0" y="0" width="${n2(g.w)}" height="${n2(g.h)}"/>`;
@@ -236,9 +240,10 @@
       for (const p of ps) {
         t += `<text class="place-label${show}" x="${n2(g.x(p.x))}" y="${n2(g.y(p.y) + g.siteR + 0.36 * M)}" font-size="${0.26 * M}">${esc(p.name)}</text>`;
       }
-      bg += `<g class="labels">${t}</g>`;
+      labels = `<g class="labels">${t}</g>`;
     }
-    svg.innerHTML = bg + '<g id="layer-items"></g><g id="layer-arrows"></g><g id="layer-robots"></g>';
+    // Names above the sites (with a halo), moves and robots above all.
+    svg.innerHTML = bg + '<g id="layer-items"></g>' + labels + '<g id="layer-arrows"></g><g id="layer-robots"></g>';
   }
 
   // ---- one round ------------------------------------------------------------
@@ -252,7 +257,7 @@
   // it shares the spot (graph maps: always beside the site, above it when
   // there is room, so the site's wear and name show).
   function spots(f) {
-    const g = S.geo, groups = new Map(), out = new Array(f.robots.length);
+    const g = S.geo, M = g.M, groups = new Map(), out = new Array(f.robots.length);
     f.robots.forEach((r, j) => {
       const k = r.at.x + ',' + r.at.y;
       if (!groups.has(k)) groups.set(k, []);
@@ -262,13 +267,20 @@
       const n = js.length;
       let ring = 0, size = g.robotR, a0 = -Math.PI / 2, step = (2 * Math.PI) / n;
       if (!g.grid) {
+        // Up to 6 on an arc over the site (its name is below), more all
+        // around it.
         ring = g.siteR + g.robotR * 1.05;
-        if (n <= 3) { step = 0.9; a0 = -Math.PI / 2 - ((n - 1) / 2) * step; }
+        if (n <= 3) {
+          step = 0.9; a0 = -Math.PI / 2 - ((n - 1) / 2) * step;
+        } else if (n <= 6) {
+          ring = Math.max(ring, ((n - 1) * 2.1 * g.robotR) / Math.PI);
+          step = Math.PI / (n - 1); a0 = -Math.PI;
+        }
         size = Math.min(g.robotR, Math.max(0.5 * g.robotR, 0.95 * ring * Math.sin(step / 2)));
       } else if (n > 1) {
         // Inside the cell while they fit, smaller the more they are.
-        ring = Math.min(0.3, 0.17 + 0.04 * n) * g.U;
-        size = Math.min(0.24 * g.U, Math.max(0.14 * g.U, 0.9 * ring * Math.sin(Math.PI / n)));
+        ring = Math.min(0.3, 0.17 + 0.04 * n) * M;
+        size = Math.min(0.24 * M, Math.max(0.14 * M, 0.9 * ring * Math.sin(Math.PI / n)));
       }
       js.forEach((j, q) => {
         const r = f.robots[j], a = a0 + q * step;
@@ -326,7 +338,7 @@
         // Stop short of whatever is drawn at the target: a site, or a
         // robot on a cell (whose mark would hide the arrowhead).
         const occupied = g.grid && taken.has(r.to.x + ',' + r.to.y);
-        const head = g.grid ? (occupied ? g.robotR + 0.04 * g.U : 0.1 * g.U) : g.siteR + 0.06 * M;
+        const head = g.grid ? (occupied ? g.robotR + 0.04 * M : 0.1 * M) : g.siteR + 0.06 * M;
         const tail = kind === 'guessed' ? size * 1.3 : size;
         if (L > head + tail) {
           const ux = dx / L, uy = dy / L;
@@ -420,8 +432,9 @@
     for (const v of vs) if (isFinite(v) && v > max) max = v;
     el(name + '-max').textContent = vs.length ? `max ${num(max)}${name === 'lat' ? ' ms' : ''}` : '';
     if (!vs.length) { svg.innerHTML = ''; return; }
+    if (vs.length === 1) vs = [vs[0], vs[0]]; // one round: a level line
     // Oldest at the left, the round shown at the right edge.
-    const x = (j) => (vs.length > 1 ? (j / (vs.length - 1)) * W : W / 2);
+    const x = (j) => (j / (vs.length - 1)) * W;
     const y = (v) => H - pad - (max > 0 ? (Math.max(0, v) / max) * (H - 2 * pad) : 0);
     let pts = '';
     for (let j = 0; j < vs.length; j++) pts += `${n2(x(j))},${n2(y(vs[j]))} `;
@@ -519,6 +532,7 @@
   function play() {
     if (S.live || !S.frames.length) return;
     if (S.i >= S.frames.length - 1) S.i = 0; // from the start again
+    S.speed = Number(el('speed').value) || 5;
     S.playing = true; S.acc = 0; S.last = performance.now();
     playButtons();
     scheduleDraw();
@@ -576,7 +590,7 @@
     scrub.addEventListener('input', () => { pause(); setIndex(Number(scrub.value)); });
     document.addEventListener('keydown', (e) => {
       const t = e.target;
-      if (t && (t.tagName === 'INPUT' || t.tagName === 'SELECT' || t.tagName === 'TEXTAREA')) return;
+      if (t && /^(INPUT|SELECT|TEXTAREA|BUTTON)$/.test(t.tagName)) return;
       if (e.key === 'ArrowLeft') { pause(); setIndex(S.i - 1); e.preventDefault(); }
       else if (e.key === 'ArrowRight') { pause(); setIndex(S.i + 1); e.preventDefault(); }
       else if (e.key === ' ') { (S.playing ? pause : play)(); e.preventDefault(); }
