@@ -1,95 +1,15 @@
-// Command sim is Baton's simulator: it compares decision policies on seeded
-// episodes and solves tiny instances exactly.
+// Command sim is Baton's simulator: a whole fleet on this machine,
+// comparisons of policies on seeded episodes, exact solutions of tiny
+// instances, drills, training, replays (package sim/cli).
 //
+//	sim fleet --scenario harbor --robots 6 --rounds 200 --seed 1 --view
 //	sim compare --scenario harbor --robots 4 --episodes 30 --seed 7
-//	sim exact --scenario harbor --config tiny.yaml --json
 package main
 
 import (
-	"errors"
-	"fmt"
 	"os"
 
-	"baton/agentd/daemon"
-	"baton/coordinator/server"
+	"baton/sim/cli"
 )
 
-const usage = `sim: Baton's fleet simulator
-
-usage: sim <command> [flags]
-
-commands:
-  compare   base vs all-at-once vs one-at-a-time rollout on seeded episodes
-  exact     exact costs of optimal, base and both rollouts on a tiny instance
-  fleet     a whole fleet on this machine: embedded NATS, coordinator, one agentd per robot
-  drive     play the world through the local interfaces of daemons running elsewhere
-  bench     bench rounds: hop and round latency against the physics;
-            bench security: round latency with and without TLS and per-process permissions
-  soak      a process fleet for many rounds under loss: goroutines, heap, fds, log size
-  creds     a fleet's NATS identities (nkeys) and the server's permissions
-  replay    rebuild an episode from a decision log (durable stream or file), recompute its cost
-  drill     run a drill file: fleets through scheduled faults, and what each costs
-  train     learn a stand-in for rollout (the learned guess source); --iterations K
-            repeats train-then-use-as-base (approximate policy iteration)
-  agentd, coordinator   the daemons themselves (as ./agentd and ./coordinator)
-
-Run 'sim <command> -h' for a command's flags.
-`
-
-func main() {
-	os.Exit(run(os.Args[1:]))
-}
-
-func run(args []string) int {
-	if len(args) == 0 {
-		fmt.Fprint(os.Stderr, usage)
-		return 2
-	}
-	var err error
-	switch args[0] {
-	case "compare":
-		err = cmdCompare(args[1:])
-	case "exact":
-		err = cmdExact(args[1:])
-	case "fleet":
-		err = cmdFleet(args[1:])
-	case "drive":
-		err = cmdDrive(args[1:])
-	case "bench":
-		err = cmdBench(args[1:])
-	case "train":
-		err = cmdTrain(args[1:])
-	case "agentd":
-		// The same daemon as ./agentd, so `sim fleet` can start real
-		// processes from this one binary.
-		return daemon.MainWith(args[1:], drillHooks())
-	case "coordinator":
-		return server.MainWith(args[1:], drillHooks())
-	case "drill":
-		err = cmdDrill(args[1:])
-	case "creds":
-		err = cmdCreds(args[1:])
-	case "soak":
-		err = cmdSoak(args[1:])
-	case "replay":
-		err = cmdReplay(args[1:])
-	case "-h", "-help", "--help", "help":
-		fmt.Print(usage)
-		return 0
-	default:
-		fmt.Fprintf(os.Stderr, "sim: unknown command %q\n\n%s", args[0], usage)
-		return 2
-	}
-	if err == errUsage {
-		return 2
-	}
-	if errors.Is(err, errInterrupted) {
-		fmt.Fprintln(os.Stderr, "sim:", err)
-		return 130
-	}
-	if err != nil {
-		fmt.Fprintln(os.Stderr, "sim:", err)
-		return 1
-	}
-	return 0
-}
+func main() { os.Exit(cli.Main(os.Args[1:])) }

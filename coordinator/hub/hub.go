@@ -50,7 +50,10 @@ type Config struct {
 	Journal Journal
 	// JournalGiveUp: how long one record is retried (0: JournalGiveUp).
 	JournalGiveUp time.Duration
-	Metrics       *Metrics
+	// GateWait: how long a round's close waits for its record before it
+	// goes out anyway (0: GateWait); the record is still written after.
+	GateWait time.Duration
+	Metrics  *Metrics
 	// OnRound is called after each round's reports are filed (progress).
 	OnRound func(clock.Record)
 }
@@ -78,6 +81,10 @@ const (
 	JournalWait   = 2 * time.Second
 	JournalRetry  = 250 * time.Millisecond
 	JournalGiveUp = 10 * time.Second
+	// GateWait bounds how late a close goes out for its record: past it
+	// the fleet goes on (a JetStream cluster's new leader usually takes
+	// 2-6 s; robots' software waits about 10 s for a round).
+	GateWait = 8 * time.Second
 )
 
 // Metrics are the coordinator's Prometheus series.
@@ -135,10 +142,11 @@ type Hub struct {
 	// the event loop never waits on it. Messages wait instead: outbox holds
 	// them, in order, behind gates, the rounds whose write-ahead record
 	// has not been stored yet; acks says which gate was.
-	jobs   chan journalJob
-	acks   chan uint64
-	outbox []outItem
-	gates  int
+	jobs    chan journalJob
+	acks    chan uint64
+	gateDue chan uint64 // gates held GateWait: the messages go out anyway
+	outbox  []outItem
+	gates   int
 }
 
 type journalJob struct {
@@ -175,6 +183,9 @@ func New(cfg Config, bus shell.Bus) *Hub {
 	cfg.Clock.ConfirmCloses = cfg.Journal != nil
 	if cfg.JournalGiveUp <= 0 {
 		cfg.JournalGiveUp = JournalGiveUp
+	}
+	if cfg.GateWait <= 0 {
+		cfg.GateWait = GateWait
 	}
 	return &Hub{cfg: cfg, bus: bus, machine: clock.New(cfg.Clock), start: now, timers: make(chan struct{}, 1),
 		models: make(chan uint64, 4), done: make(chan struct{}), drops: shell.Drops{Log: cfg.Log, Counter: cfg.Metrics.Dropped}}
@@ -215,7 +226,7 @@ func (h *Hub) Run(ctx context.Context) error {
 		return fmt.Errorf("nats flush: %w", err)
 	}
 	if h.cfg.Journal != nil {
-		h.jobs, h.acks = make(chan journalJob, JournalQueue), make(chan uint64, JournalQueue)
+		h.jobs, h.acks, h.gateDue = make(chan journalJob, JournalQueue), make(chan uint64, JournalQueue), make(chan uint64, JournalQueue)
 		written := make(chan struct{})
 		go h.journalWriter(written)
 		defer func() {
@@ -267,6 +278,15 @@ func (h *Hub) Run(ctx context.Context) error {
 			if acts, err = h.release(round); err != nil {
 				return err
 			}
+		case round := <-h.gateDue:
+			if slices.ContainsFunc(h.outbox, func(o outItem) bool { return o.act == nil && o.gate == round }) {
+				h.cfg.Log.Warn("decision log stream is slow: the round's close goes out before its record is stored (a coordinator lost now could number this round again)",
+					zap.Uint64("round", round), zap.Duration("waited", h.cfg.GateWait))
+			}
+			var err error
+			if acts, err = h.release(round); err != nil {
+				return err
+			}
 		case <-members.C:
 			acts = h.members(false)
 		case <-second.C:
@@ -284,12 +304,16 @@ func (h *Hub) Run(ctx context.Context) error {
 // start a round: a robot that joined a moment ago must be in its order.
 func (h *Hub) members(force bool) []clock.Action {
 	var alive []int
-	if h.cfg.Alive == nil {
+	switch {
+	case !h.bus.Connected():
+		// Cut off from the bus, no robot can hear a round: starting them
+		// would only run rounds everyone holds, ahead of the robots.
+	case h.cfg.Alive == nil:
 		alive = make([]int, h.cfg.Clock.Model.Robots())
 		for i := range alive {
 			alive[i] = i
 		}
-	} else {
+	default:
 		alive = h.cfg.Alive()
 		sort.Ints(alive)
 	}
@@ -449,6 +473,13 @@ func (h *Hub) enqueue(j journalJob) {
 		if j.gate != 0 {
 			h.gates++
 			h.outbox = append(h.outbox, outItem{gate: j.gate})
+			r := j.gate
+			time.AfterFunc(h.cfg.GateWait, func() {
+				select {
+				case h.gateDue <- r:
+				case <-h.done:
+				}
+			})
 		}
 	default:
 		h.cfg.Metrics.JournalFails.Inc()
@@ -471,11 +502,15 @@ func (h *Hub) journalWriter(done chan<- struct{}) {
 // release lifts round's gate and sends the messages it held, up to the
 // next gate; a close that goes out late tells the machine when.
 func (h *Hub) release(round uint64) ([]clock.Action, error) {
-	if len(h.outbox) == 0 || h.outbox[0].act != nil || h.outbox[0].gate != round {
-		return nil, fmt.Errorf("decision log: gate for round %d acknowledged out of order", round)
+	i := slices.IndexFunc(h.outbox, func(o outItem) bool { return o.act == nil && o.gate == round })
+	if i < 0 {
+		return nil, nil // already let go (GateWait), or stored after that
 	}
 	h.gates--
-	h.outbox = h.outbox[1:]
+	h.outbox = slices.Delete(h.outbox, i, i+1)
+	if i > 0 && h.outbox[0].act == nil {
+		return nil, nil // an earlier round's gate still holds what follows
+	}
 	var acts []clock.Action
 	var closed []uint64
 	for len(h.outbox) > 0 && h.outbox[0].act != nil {

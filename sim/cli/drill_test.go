@@ -1,6 +1,7 @@
-package main
+package cli
 
 import (
+	"cmp"
 	"context"
 	"encoding/json"
 	"errors"
@@ -29,7 +30,8 @@ func processDrill(t *testing.T, text string) drill.Episode {
 	}
 	ctx, cancel := context.WithTimeout(context.Background(), 2*time.Minute)
 	defer cancel()
-	p := &processRunner{exe: simBin, logDir: t.TempDir()}
+	// BATON_DRILL_TEST_LOGS keeps the fleets' logs there, to look into a failure.
+	p := &processRunner{exe: simBin, logDir: cmp.Or(os.Getenv("BATON_DRILL_TEST_LOGS"), t.TempDir())}
 	ep, err := p.RunProcess(ctx, d.Job(d.Points[0], 0, signal.Options{}))
 	if err != nil {
 		t.Fatal(err)

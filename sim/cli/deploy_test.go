@@ -1,4 +1,4 @@
-package main
+package cli
 
 import (
 	"context"
@@ -22,7 +22,7 @@ import (
 // shipped leaf template loads with a robot's leaf identity from sim creds.
 // (deploy/shell's TestLeafNodeOnRobot runs them.)
 func TestDeployNATSConfigs(t *testing.T) {
-	files, _ := filepath.Glob("../deploy/nats/node-*.conf")
+	files, _ := filepath.Glob("../../deploy/nats/node-*.conf")
 	if len(files) != 3 {
 		t.Fatalf("want 3 cluster node configurations, found %v", files)
 	}
@@ -63,7 +63,7 @@ func TestDeployNATSConfigs(t *testing.T) {
 		t.Fatal(err)
 	}
 	os.WriteFile(filepath.Join(dir, "leaf-identity.conf"), identity, 0o600)
-	data, err := os.ReadFile("../deploy/nats/leaf-robot.conf")
+	data, err := os.ReadFile("../../deploy/nats/leaf-robot.conf")
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -91,7 +91,7 @@ func TestDeployUnitsUseRealFlags(t *testing.T) {
 	flagsOf := func(cmd string) map[string]bool {
 		out, _ := exec.Command(simBin, cmd, "-h").CombinedOutput()
 		have := map[string]bool{}
-		for _, m := range regexp.MustCompile(`(?m)^  -([a-z-]+)`).FindAllStringSubmatch(string(out), -1) {
+		for _, m := range regexp.MustCompile(`(?m)^  --?([a-z][a-z-]*)`).FindAllStringSubmatch(string(out), -1) {
 			have[m[1]] = true
 		}
 		if len(have) < 10 {
@@ -100,7 +100,7 @@ func TestDeployUnitsUseRealFlags(t *testing.T) {
 		return have
 	}
 	for unit, cmd := range map[string]string{"baton-agentd@.service": "agentd", "baton-coordinator.service": "coordinator"} {
-		data, err := os.ReadFile(filepath.Join("../deploy/systemd", unit))
+		data, err := os.ReadFile(filepath.Join("../../deploy/systemd", unit))
 		if err != nil {
 			t.Fatal(err)
 		}
@@ -156,7 +156,7 @@ func TestShortSoak(t *testing.T) {
 // The example fleet file runs as a whole fleet, flags on the command line
 // overriding it; agentd takes it with --robot, and its own flags win too.
 func TestFleetFileRuns(t *testing.T) {
-	out, err := exec.Command(simBin, "fleet", "--fleet-file", "../deploy/examples/fleet.yaml", "--rounds", "3", "--period", "0", "--json").Output()
+	out, err := exec.Command(simBin, "fleet", "--fleet-file", "../../deploy/examples/fleet.yaml", "--rounds", "3", "--period", "0", "--json").Output()
 	if err != nil {
 		t.Fatalf("%v\n%s", err, out)
 	}
@@ -169,7 +169,7 @@ func TestFleetFileRuns(t *testing.T) {
 	if err := json.Unmarshal(out, &sum); err != nil || sum.Scenario != "upkeep" || sum.Robots != 4 || sum.Rounds != 3 || sum.Held != 0 {
 		t.Fatalf("%+v %v", sum, err)
 	}
-	cmd := exec.Command(simBin, "agentd", "--fleet-file", "../deploy/examples/fleet.yaml", "--robot", "1",
+	cmd := exec.Command(simBin, "agentd", "--fleet-file", "../../deploy/examples/fleet.yaml", "--robot", "1",
 		"--nats", "nats://127.0.0.1:1", "--creds", "", "--tls-ca", "", "--gossip-key-file", "", "--connect-timeout", "1s")
 	b, err := cmd.CombinedOutput()
 	if err == nil || !strings.Contains(string(b), "cannot reach NATS at nats://127.0.0.1:1") {

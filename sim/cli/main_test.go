@@ -1,4 +1,4 @@
-package main
+package cli
 
 import (
 	"encoding/json"
@@ -18,7 +18,7 @@ func TestMain(m *testing.M) {
 		panic(err)
 	}
 	simBin = filepath.Join(dir, "sim")
-	if out, err := exec.Command("go", "build", "-o", simBin, ".").CombinedOutput(); err != nil {
+	if out, err := exec.Command("go", "build", "-o", simBin, "..").CombinedOutput(); err != nil {
 		panic("building sim: " + err.Error() + "\n" + string(out))
 	}
 	code := m.Run()
@@ -96,7 +96,7 @@ func TestExactJSON(t *testing.T) {
 }
 
 func checkExact(t *testing.T, scenario string) {
-	out, errOut, code := runSim(t, "exact", "--scenario", scenario, "--config", "../deploy/examples/"+scenario+"-tiny.yaml", "--json")
+	out, errOut, code := runSim(t, "exact", "--scenario", scenario, "--config", "../../deploy/examples/"+scenario+"-tiny.yaml", "--json")
 	if code != 0 {
 		t.Fatalf("exit %d: %s", code, errOut)
 	}

@@ -1,4 +1,4 @@
-package main
+package cli
 
 import (
 	"context"
@@ -43,7 +43,7 @@ func runLab(t *testing.T, limit time.Duration, args ...string) (string, int, str
 	t.Helper()
 	ctx, cancel := context.WithTimeout(context.Background(), limit)
 	defer cancel()
-	cmd := exec.CommandContext(ctx, "bash", append([]string{"../deploy/lab.sh"}, args...)...)
+	cmd := exec.CommandContext(ctx, "bash", append([]string{"../../deploy/lab.sh"}, args...)...)
 	cmd.Cancel = func() error { return cmd.Process.Signal(syscall.SIGTERM) }
 	cmd.WaitDelay = 20 * time.Second
 	out, err := cmd.CombinedOutput()
