@@ -315,6 +315,9 @@ func (n *Net) boundTo(m model.Model) (*Net, error) {
 	b := &Net{meta: n.meta, act: n.act, mean: n.mean, scale: n.scale, params: n.params, layers: n.layers}
 	b.pool.New = func() any { return b.newScratch() }
 	b.bind(f)
+	if b.m == nil {
+		b.m = m // a registered scenario's featurizer: mask with the model bound to
+	}
 	return b, nil
 }
 

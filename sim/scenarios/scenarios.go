@@ -14,9 +14,10 @@ import (
 )
 
 type loader struct {
-	def  func(robots int) (model.Model, error)
-	file func(path string, robots int) (model.Model, error)
-	help string
+	def    func(robots int) (model.Model, error)
+	file   func(path string, robots int) (model.Model, error)
+	starts func(m model.Model, starts []string) (model.Model, error)
+	help   string
 }
 
 // Scenario is what an integrator's own module registers to run its own
@@ -29,6 +30,9 @@ type Scenario struct {
 	Load func(path string, robots int) (model.Model, error)
 	// Help is a one-line description for the commands' help.
 	Help string
+	// Starts gives robot r start position starts[r], in the scenario's
+	// own terms (--starts, the fleet file's robots' start); nil: none.
+	Starts func(m model.Model, starts []string) (model.Model, error)
 }
 
 // Register adds a scenario under name, before any command runs (an init
@@ -47,7 +51,7 @@ func Register(name string, s Scenario) {
 	if s.Default == nil {
 		panic(fmt.Sprintf("scenarios: %q has no Default", name))
 	}
-	l := loader{def: s.Default, file: s.Load, help: s.Help}
+	l := loader{def: s.Default, file: s.Load, starts: s.Starts, help: s.Help}
 	if l.file == nil {
 		l.file = func(path string, _ int) (model.Model, error) {
 			return nil, fmt.Errorf("scenario %s reads no files (--config %s)", name, path)
@@ -163,6 +167,13 @@ func LoadStarts(name, file string, robots int, starts string) (model.Model, erro
 		return out, nil
 	case *upkeep.Model:
 		out, err := m.WithStarts(parts)
+		if err != nil {
+			return nil, fmt.Errorf("--starts: %w", err)
+		}
+		return out, nil
+	}
+	if l := registry[name]; l.starts != nil {
+		out, err := l.starts(m, parts)
 		if err != nil {
 			return nil, fmt.Errorf("--starts: %w", err)
 		}
