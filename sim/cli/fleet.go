@@ -120,14 +120,11 @@ type fleetRun struct {
 }
 
 func startFleet(ctx context.Context, o fleetOpts) (*fleetRun, error) {
-	m, err := o.sc.load()
+	fm, err := o.model()
 	if err != nil {
 		return nil, err
 	}
-	fm, err := o.check(m)
-	if err != nil {
-		return nil, err
-	}
+	var m model.Model = fm
 	if err := os.MkdirAll(o.logDir, 0o755); err != nil {
 		return nil, fmt.Errorf("--logs: %w", err)
 	}
@@ -454,20 +451,7 @@ func (f *fleetRun) report(round int) {
 func (f *fleetRun) play(round int) fleetsum.Round {
 	res := fleetsum.Round{Round: round, Decided: make([]int, len(f.bases))}
 	t0 := time.Now()
-	// Each robot's software waits on its own: one that waits long (its
-	// daemon just restarted, say) must not make the others read their
-	// decisions after their round is over.
-	views := make([]node.View, len(f.bases))
-	errs := make([]error, len(f.bases))
-	var wg sync.WaitGroup
-	for r, b := range f.bases {
-		wg.Add(1)
-		go func() {
-			defer wg.Done()
-			views[r], errs[r] = getDecision(f.client, b, round, f.wait)
-		}()
-	}
-	wg.Wait()
+	views, errs := f.readDecisions(round)
 	for r := range f.bases {
 		v, err := views[r], errs[r]
 		if err == nil {
@@ -498,6 +482,25 @@ func (f *fleetRun) play(round int) fleetsum.Round {
 	}
 	f.report(round)
 	return res
+}
+
+// readDecisions is every robot's software reading its decision for round.
+// Each waits on its own: one that waits long (its daemon just restarted,
+// say) must not make the others read their decisions after their round is
+// over.
+func (f *fleetRun) readDecisions(round int) ([]node.View, []error) {
+	views := make([]node.View, len(f.bases))
+	errs := make([]error, len(f.bases))
+	var wg sync.WaitGroup
+	for r, b := range f.bases {
+		wg.Add(1)
+		go func() {
+			defer wg.Done()
+			views[r], errs[r] = getDecision(f.client, b, round, f.wait)
+		}()
+	}
+	wg.Wait()
+	return views, errs
 }
 
 func (f *fleetRun) close() {
@@ -558,6 +561,15 @@ func (f *fleetRun) restartNATS(down time.Duration) error {
 	}
 	f.ns = nil
 	return fmt.Errorf("restarting NATS on %s: %w", f.url, lastErr)
+}
+
+// model loads the scenario and checks the options against it.
+func (o fleetOpts) model() (model.Fleet, error) {
+	m, err := o.sc.load()
+	if err != nil {
+		return nil, err
+	}
+	return o.check(m)
 }
 
 // check validates the options against the scenario.
@@ -788,11 +800,7 @@ exactly what the real fleet decides for the same flags: compare decisions_sha256
 
 // startVirtual builds the virtual-time fleet for the same options.
 func startVirtual(o fleetOpts) (*vfleet.Fleet, error) {
-	m, err := o.sc.load()
-	if err != nil {
-		return nil, err
-	}
-	fm, err := o.check(m)
+	m, err := o.model()
 	if err != nil {
 		return nil, err
 	}
@@ -802,7 +810,7 @@ func startVirtual(o fleetOpts) (*vfleet.Fleet, error) {
 	}
 	ep := episode.Seed(o.seed, 0)
 	c := o.clock
-	c.Fleet, c.Model, c.Digest, c.Seed, c.Epoch = o.fleet, fm, digest, episode.FleetSeed(ep), 1
+	c.Fleet, c.Model, c.Digest, c.Seed, c.Epoch = o.fleet, m, digest, episode.FleetSeed(ep), 1
 	rc := node.DefaultConfig()
 	cfg := vfleet.Config{Clock: c, Stale: rc.Stale, Guess: "base", GuessMargin: rc.GuessMargin, World: ep,
 		Link: o.link, TurnTime: o.turnTime, Slow: o.slow}

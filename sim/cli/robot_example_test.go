@@ -11,7 +11,6 @@ import (
 	"regexp"
 	"strconv"
 	"strings"
-	"sync"
 	"testing"
 	"time"
 
@@ -103,17 +102,7 @@ func playOthers(t *testing.T, f *fleetRun, rounds, ex int) []int32 {
 	t.Helper()
 	var at []int32
 	for round := 1; round <= rounds; round++ {
-		views := make([]node.View, len(f.bases))
-		errs := make([]error, len(f.bases))
-		var wg sync.WaitGroup
-		for r, b := range f.bases {
-			wg.Add(1)
-			go func() {
-				defer wg.Done()
-				views[r], errs[r] = getDecision(f.client, b, round, f.wait)
-			}()
-		}
-		wg.Wait()
+		views, errs := f.readDecisions(round)
 		u := make([]int, len(f.bases))
 		for r, v := range views {
 			if errs[r] != nil || v.Hold {
