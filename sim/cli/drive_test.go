@@ -184,11 +184,13 @@ func TestDriveMatchesFleet(t *testing.T) {
 // that hold while healthy (here: the coordinator stopped after its last
 // round, and the drive plays two more) fail it, and the error names the
 // rounds and robots. A second drive is refused: the robots are past round 0.
+// (The drive waits 2.5 s: a round with the killed robot in its order closes
+// at that robot's deadline, later still on a loaded machine.)
 func TestDriveNamesHeldRounds(t *testing.T) {
 	const robots = 3
 	f := remoteFleet(t, robots, 2, driveToken, "--rounds", "5", "--samples", "4", "--horizon", "6", "--report-wait", "300ms")
 	cmd := exec.Command(simBin, "drive", "--robot-http", strings.Join(f.bases, ","), "--http-token-file", writeToken(t, driveToken),
-		"--rounds", "7", "--seed", "2", "--wait", "1s", "--json")
+		"--rounds", "7", "--seed", "2", "--wait", "2500ms", "--json")
 	var stdout, stderr bytes.Buffer
 	cmd.Stdout, cmd.Stderr = &stdout, &stderr
 	if err := cmd.Start(); err != nil {
