@@ -83,6 +83,8 @@ type fleetOpts struct {
 	virtualOnly []string // virtual-only flags given on the command line
 	// secure: per-process NATS identities and TLS, as on a site.
 	secure bool
+	// trueWear: the world keeps a belief scenario's hidden truth.
+	trueWear bool
 }
 
 // fleetRun is a running fleet: processes, the embedded NATS server and the
@@ -215,7 +217,14 @@ func startFleet(ctx context.Context, o fleetOpts) (*fleetRun, error) {
 		f.close()
 		return nil, fmt.Errorf("coordinator did not see every robot join (see %s): %w", filepath.Join(o.logDir, "coordinator.log"), err)
 	}
-	f.world = world.New(fm, epSeed)
+	if o.trueWear {
+		if f.world, err = world.NewTrue(fm, epSeed); err != nil {
+			f.close()
+			return nil, fmt.Errorf("--true-wear: %w", err)
+		}
+	} else {
+		f.world = world.New(fm, epSeed)
+	}
 	f.wait = time.Duration(m.Robots()+2)*o.clock.TurnBudget + 10*time.Second
 	f.report(0)
 	return f, nil
@@ -596,6 +605,9 @@ func (o fleetOpts) check(m model.Model) (model.Fleet, error) {
 			return nil, fmt.Errorf("--slow %d=...: the fleet has robots 0..%d", r, m.Robots()-1)
 		}
 	}
+	if o.virtual && o.trueWear {
+		return nil, errors.New("--true-wear is for fleets of processes; the virtual fleet's world is sim compare's")
+	}
 	if o.virtual && o.secure {
 		return nil, errors.New("--secure is for fleets of processes over NATS; the virtual fleet has no server")
 	}
@@ -644,6 +656,7 @@ exactly what the real fleet decides for the same flags: compare decisions_sha256
 	fs.Var(o.slow, "slow", "fault injection: ROBOT=DELAY holds back that robot's decisions (repeatable)")
 	fs.StringVar(&o.guessModel, "guess-model", "", "model file from sim train, distributed to the robots (for --guess learned)")
 	fs.BoolVar(&o.virtual, "virtual", false, "run the fleet in one process in virtual time instead of as processes over NATS")
+	fs.BoolVar(&o.trueWear, "true-wear", false, "upkeep: the simulated world keeps each site's true wear level (drawn, worn and seen by robots) and reports the true cost beside the belief's expected cost; its draws differ from sim compare's episodes")
 	fs.BoolVar(&o.secure, "secure", false, "as on a site: an nkey and publish permissions per process (as sim creds makes them) and TLS to the NATS server (a throwaway CA, in the logs directory)")
 	fs.DurationVar(&o.link.Hop, "hop", o.link.Hop, "virtual: one-way delay of every delivery on the in-memory bus")
 	fs.DurationVar(&o.link.Jitter, "jitter", 0, "virtual: plus a uniform random delay in [0, jitter)")
@@ -756,6 +769,11 @@ exactly what the real fleet decides for the same flags: compare decisions_sha256
 	}
 	sum.Batches = w.Batch
 	sum.CostKind = fleetsum.CostKind(w.M.Name())
+	if o.trueWear {
+		tc := w.TrueCost
+		sum.TrueCost = &tc
+		sum.CostKind = "undiscounted sum of stage costs, each the expectation over the fleet's belief of wear (what it decides on); true_cost is the world's hidden wear's"
+	}
 	tally.Finish(&sum)
 	interrupted := ctx.Err() != nil
 	if *asJSON {
@@ -768,6 +786,9 @@ exactly what the real fleet decides for the same flags: compare decisions_sha256
 	}
 	fmt.Printf("\n%d rounds, total cost %.2f (%.3f per round), %d batches of slicks or tasks finished\n", sum.Rounds, sum.Cost, sum.CostPerRound, sum.Batches)
 	fmt.Printf("cost: %s\n", sum.CostKind)
+	if sum.TrueCost != nil {
+		fmt.Printf("true cost %.2f (the world's hidden wear, undiscounted; the expected cost above is its conditional mean)\n", *sum.TrueCost)
+	}
 	fmt.Printf("round latency p50 %.2f ms, p99 %.2f ms; turns decided with guesses %d; robot-rounds held %d\n",
 		sum.LatencyP50Ms, sum.LatencyP99Ms, sum.TurnsGuessed, sum.RobotsHeld)
 	fmt.Printf("%.1f rounds per second of wall time", sum.RoundsPerSecond)

@@ -193,3 +193,24 @@ func FuzzReplayLine(f *testing.F) {
 		}
 	})
 }
+
+// sim fleet --true-wear reports upkeep's true cost beside the expected one,
+// and refuses a scenario whose state is the truth.
+func TestFleetTrueWear(t *testing.T) {
+	out, err := exec.Command(simBin, "fleet", "--scenario", "upkeep", "--robots", "3", "--rounds", "4", "--true-wear", "--json").Output()
+	if err != nil {
+		t.Fatalf("%v\n%s", err, out)
+	}
+	var sum struct {
+		Cost     float64  `json:"cost"`
+		TrueCost *float64 `json:"true_cost"`
+		Kind     string   `json:"cost_kind"`
+	}
+	if err := json.Unmarshal(out, &sum); err != nil || sum.TrueCost == nil || *sum.TrueCost < 0 || !strings.Contains(sum.Kind, "true_cost") {
+		t.Fatalf("%+v %v\n%s", sum, err, out)
+	}
+	b, err := exec.Command(simBin, "fleet", "--scenario", "harbor", "--rounds", "2", "--true-wear").CombinedOutput()
+	if err == nil || !strings.Contains(string(b), "keeps no hidden truth") {
+		t.Fatalf("harbor --true-wear: %v\n%s", err, b)
+	}
+}

@@ -46,6 +46,9 @@ type Summary struct {
 	Guess    string  `json:"guess"`
 	Virtual  bool    `json:"virtual"`
 	Cost     float64 `json:"cost"`
+	// TrueCost is the world's true cost, where it keeps a belief
+	// scenario's hidden truth (sim fleet --true-wear).
+	TrueCost *float64 `json:"true_cost,omitempty"`
 	// CostKind says what Cost is (see CostKind).
 	CostKind     string  `json:"cost_kind"`
 	CostPerRound float64 `json:"cost_per_round"`

@@ -1,0 +1,59 @@
+package upkeep
+
+import (
+	"math/rand/v2"
+
+	"baton/sim/model"
+)
+
+var _ model.Truther = (*Model)(nil)
+
+// DrawTruth draws each site's true wear level from its belief.
+func (m *Model) DrawTruth(s model.State, rng *rand.Rand) []int32 {
+	st := s.(*State)
+	out := make([]int32, m.n)
+	for site := range m.n {
+		out[site] = int32(m.sample(st.bel[site*m.k:(site+1)*m.k], rng.Float64()))
+	}
+	return out
+}
+
+// TrueStep services the sites of robots with control 0, charges the true
+// levels' cost (after servicing, before wear, as Advance does for the
+// belief), then wears every site one step along its chain: one uniform per
+// site.
+func (m *Model) TrueStep(truth []int32, s model.State, u []int, rng *rand.Rand) float64 {
+	st := s.(*State)
+	for r, c := range u {
+		if c == 0 {
+			truth[st.pos[r]] = 0
+		}
+	}
+	cost := 0.0
+	for site, l := range truth {
+		cost += m.cost[l]
+		row := m.chain[(site*m.k+int(l))*m.k : (site*m.k+int(l)+1)*m.k]
+		truth[site] = int32(m.sample(row, rng.Float64()))
+	}
+	return cost
+}
+
+// TrueSense is the true level of the site robot r stands on (every site,
+// for an instance that observes all).
+func (m *Model) TrueSense(truth []int32, s model.State, r int, dst []model.Sighting) []model.Sighting {
+	st := s.(*State)
+	if m.observeAll {
+		for site, l := range truth {
+			dst = append(dst, model.Sighting{What: int32(site), Value: l})
+		}
+		return dst
+	}
+	at := st.pos[r]
+	return append(dst, model.Sighting{What: int32(at), Value: truth[at]})
+}
+
+// PointLevel is site's level when the belief in s is certain of it.
+func (m *Model) PointLevel(s model.State, site int) (int, bool) {
+	st := s.(*State)
+	return pointLevel(st.bel[site*m.k : (site+1)*m.k])
+}
