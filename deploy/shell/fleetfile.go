@@ -2,6 +2,7 @@ package shell
 
 import (
 	"fmt"
+	"os"
 	"path/filepath"
 	"slices"
 	"strconv"
@@ -118,6 +119,14 @@ func LoadFleetFile(path string) (*FleetFile, error) {
 	f.dir = filepath.Dir(path)
 	if err := f.check(doc); err != nil {
 		return nil, err
+	}
+	for _, p := range []struct{ field, path string }{{"site", f.Site}, {"guess.model", f.Guess.Model}} {
+		if p.path == "" {
+			continue
+		}
+		if _, err := os.Stat(f.path(p.path)); err != nil {
+			return nil, doc.Errorf(p.field, "%s: no such file (relative paths are relative to the fleet file)", f.path(p.path))
+		}
 	}
 	return &f, nil
 }
@@ -280,6 +289,15 @@ func ExpandFleetFile(args []string, role string) ([]string, error) {
 	if file == "" {
 		return args, nil
 	}
+	n := 0
+	for _, a := range args {
+		if k, _, _ := strings.Cut(strings.TrimLeft(a, "-"), "="); strings.HasPrefix(a, "-") && k == "fleet-file" {
+			n++
+		}
+	}
+	if n > 1 {
+		return nil, fmt.Errorf("--fleet-file given %d times: one fleet, one file", n)
+	}
 	f, err := LoadFleetFile(file)
 	if err != nil {
 		return nil, fmt.Errorf("--fleet-file: %w", err)
@@ -293,6 +311,12 @@ func ExpandFleetFile(args []string, role string) ([]string, error) {
 		if robot, err = strconv.Atoi(v); err != nil {
 			return nil, fmt.Errorf("--robot %q: not a robot id", v)
 		}
+	}
+	// A robot count on the command line that is not the file's would
+	// make the file's robots (ids, names, starts) wrong: a conflict, not
+	// an override.
+	if v, _ := flagValue(rest, "robots"); v != "" && v != strconv.Itoa(len(f.Robots)) {
+		return nil, fmt.Errorf("--robots %s conflicts with --fleet-file %s, which lists %d robots: change the file's robots instead", v, file, len(f.Robots))
 	}
 	fileArgs, err := f.Args(role, robot)
 	if err != nil {

@@ -79,6 +79,16 @@ func TestExpandFleetFile(t *testing.T) {
 		!strings.Contains(err.Error(), "robot 9 is not in the fleet file") {
 		t.Fatalf("robot 9: %v", err)
 	}
+	if _, err := ExpandFleetFile([]string{"--fleet-file", "../examples/fleet.yaml", "--robots", "3"}, RoleSim); err == nil ||
+		!strings.Contains(err.Error(), "--robots 3 conflicts with --fleet-file ../examples/fleet.yaml, which lists 4 robots") {
+		t.Fatalf("a conflicting robot count: %v", err)
+	}
+	if args, err := ExpandFleetFile([]string{"--fleet-file", "../examples/fleet.yaml", "--robots=4"}, RoleSim); err != nil || !slices.Contains(args, "--robots=4") {
+		t.Fatalf("the file's own robot count: %v %v", args, err)
+	}
+	if _, err := ExpandFleetFile([]string{"--fleet-file", "a.yaml", "--fleet-file=b.yaml"}, RoleSim); err == nil || !strings.Contains(err.Error(), "given 2 times") {
+		t.Fatalf("two files: %v", err)
+	}
 	if args, _ := ExpandFleetFile([]string{"--rounds", "3"}, RoleSim); !slices.Equal(args, []string{"--rounds", "3"}) {
 		t.Fatalf("without a file: %v", args)
 	}
@@ -99,6 +109,8 @@ func TestFleetFileErrors(t *testing.T) {
 		{"bad mode", "fleet: a\nscenario: harbor\nrobots: [{id: 0}]\nrounds: {mode: relay}\n", `rounds.mode: "relay"`},
 		{"unknown field", "fleet: a\nscenario: harbor\nrobot: [{id: 0}]\n", `:3: unknown field "robot"`},
 		{"not yaml", "fleet: [\n", "fleet.yaml"},
+		{"missing site file", "fleet: a\nscenario: harbor\nsite: nowhere.yaml\nrobots: [{id: 0}]\n", ":3: site: " + filepath.Join(dir, "nowhere.yaml") + ": no such file"},
+		{"missing model", "fleet: a\nscenario: harbor\nrobots: [{id: 0}]\nguess: {source: learned, model: m.gm}\n", "guess.model: "},
 	} {
 		path := filepath.Join(dir, "fleet.yaml")
 		os.WriteFile(path, []byte(c.text), 0o600)

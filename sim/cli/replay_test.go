@@ -214,3 +214,33 @@ func TestFleetTrueWear(t *testing.T) {
 		t.Fatalf("harbor --true-wear: %v\n%s", err, b)
 	}
 }
+
+// What the walk-through tripped over, as behaviour: --guess learned
+// without a model is said on screen; help spells flags as the docs do
+// (--name); every cost says what it is.
+func TestWalkThroughFixes(t *testing.T) {
+	b, err := exec.Command(simBin, "fleet", "--guess", "learned", "--rounds", "1", "--virtual", "--quiet").CombinedOutput()
+	if err != nil || !strings.Contains(string(b), "warning: --guess learned without --guess-model") {
+		t.Fatalf("learned without a model: %v\n%s", err, b)
+	}
+	for _, cmd := range [][]string{{"fleet", "-h"}, {"agentd", "-h"}, {"coordinator", "-h"}, {"replay", "-h"}} {
+		b, _ := exec.Command(simBin, cmd...).CombinedOutput()
+		if !strings.Contains(string(b), "\n  --") || strings.Contains(string(b), "\n  -r") {
+			t.Errorf("sim %s help does not spell flags --name:\n%s", cmd[0], b)
+		}
+	}
+	b, err = exec.Command(simBin, "compare", "--robots", "2", "--episodes", "2", "--samples", "2", "--horizon", "2", "--json").Output()
+	var rep struct {
+		CostKind string `json:"cost_kind"`
+	}
+	if err != nil || json.Unmarshal(b, &rep) != nil || !strings.Contains(rep.CostKind, "per episode") {
+		t.Fatalf("compare's cost kind: %v %q", err, rep.CostKind)
+	}
+	b, err = exec.Command(simBin, "fleet", "--rounds", "1", "--virtual", "--json").Output()
+	var sum struct {
+		CostKind string `json:"cost_kind"`
+	}
+	if err != nil || json.Unmarshal(b, &sum) != nil || !strings.Contains(sum.CostKind, "undiscounted") {
+		t.Fatalf("fleet's cost kind: %v %q", err, sum.CostKind)
+	}
+}
