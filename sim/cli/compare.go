@@ -19,7 +19,8 @@ func cmdCompare(args []string) error {
 	dc := decide.DefaultConfig()
 	dc.RegisterFlags(fs)
 	maxJoint := fs.Int("max-joint", 1000, "largest number of joint controls for which all-at-once is run")
-	policies := fs.String("policies", "base,all-at-once,one-at-a-time", "comma-separated policies to run")
+	policies := fs.String("policies", "base,all-at-once,one-at-a-time", "comma-separated policies to run: base, all-at-once, one-at-a-time, "+
+		"assignment (each step, robots to targets by an optimal assignment, then a step along a shortest path), one-at-a-time+assignment (rollout with the assignment policy as its base)")
 	order := fs.String("order", "", "one-at-a-time turn order, e.g. 2,0,1 (default 0..m-1)")
 	fs.IntVar(&dc.Workers, "workers", 0, "goroutines per decision (default: all cores)")
 	asJSON := fs.Bool("json", false, "print one JSON object instead of the table")

@@ -10,6 +10,7 @@ import (
 	"time"
 
 	"baton/agentd/decide"
+	"baton/sim/assign"
 	"baton/sim/episode"
 	"baton/sim/model"
 )
@@ -19,6 +20,11 @@ const (
 	Base      = "base"
 	AllAtOnce = "all-at-once"
 	OneAtTime = "one-at-a-time"
+	// Assignment is the per-step optimal assignment of robots to targets
+	// (sim/assign); OneOnAssign is one-at-a-time rollout with it as the
+	// base policy.
+	Assignment  = "assignment"
+	OneOnAssign = "one-at-a-time+assignment"
 )
 
 // Options of a comparison.
@@ -95,12 +101,22 @@ func Run(m model.Model, o Options) (*Report, error) {
 		return nil, err
 	}
 	d := decide.New(m, o.Decide)
+	var assigned model.Model // m with the assignment policy as its base, when asked for
+	var da *decide.Decider
 	rep := &Report{Scenario: m.Name(), Robots: m.Robots(), Episodes: o.Episodes, Seed: o.Seed, CostKind: CostKind(m),
 		Samples: d.Config().Samples, Horizon: d.Config().Horizon}
 	var run []string
 	for _, name := range o.Policies {
 		switch name {
 		case Base, OneAtTime:
+		case Assignment, OneOnAssign:
+			if assigned == nil {
+				a, err := assign.Wrap(m)
+				if err != nil {
+					return nil, err
+				}
+				assigned, da = a, decide.New(a, o.Decide)
+			}
 		case AllAtOnce:
 			joint := math.Pow(float64(m.MaxControls()), float64(m.Robots()))
 			if joint > float64(o.MaxJoint) {
@@ -110,7 +126,7 @@ func Run(m model.Model, o Options) (*Report, error) {
 				continue
 			}
 		default:
-			return nil, fmt.Errorf("unknown policy %q (known: %s, %s, %s)", name, Base, AllAtOnce, OneAtTime)
+			return nil, fmt.Errorf("unknown policy %q (known: %s, %s, %s, %s, %s)", name, Base, AllAtOnce, OneAtTime, Assignment, OneOnAssign)
 		}
 		run = append(run, name)
 	}
@@ -130,6 +146,10 @@ func Run(m model.Model, o Options) (*Report, error) {
 				p = decide.AllAtOncePolicy{D: d, Seed: fleet}
 			case OneAtTime:
 				p = decide.OneAtATimePolicy{D: d, Order: o.Order, Seed: fleet}
+			case Assignment:
+				p = decide.Base{M: assigned}
+			case OneOnAssign:
+				p = decide.OneAtATimePolicy{D: da, Order: o.Order, Seed: fleet}
 			}
 			res, err := episode.Run(m, p, seed, o.Now)
 			if err != nil {
@@ -187,10 +207,14 @@ func (r *Report) Row(name string) *Row {
 func (r *Report) WriteTable(w io.Writer) {
 	fmt.Fprintf(w, "%s, %d robots, %d episodes, seed %d, %d samples per Q-factor, rollout horizon %d\n\n",
 		r.Scenario, r.Robots, r.Episodes, r.Seed, r.Samples, r.Horizon)
-	fmt.Fprintf(w, "%-14s %11s %9s %11s %13s %12s\n", "policy", "mean cost", "95% CI", "mean steps", "Q/decision", "ms/decision")
-	fmt.Fprintln(w, strings.Repeat("-", 75))
+	wn := len("policy")
 	for _, p := range r.Policies {
-		fmt.Fprintf(w, "%-14s %11.2f %9s %11.1f %13.0f %12.2f\n", p.Name, p.MeanCost, fmt.Sprintf("±%.2f", p.CI95), p.MeanSteps, p.QPerDecision, p.MsPerDecision)
+		wn = max(wn, len(p.Name))
+	}
+	fmt.Fprintf(w, "%-*s %11s %9s %11s %13s %12s\n", wn, "policy", "mean cost", "95% CI", "mean steps", "Q/decision", "ms/decision")
+	fmt.Fprintln(w, strings.Repeat("-", wn+61))
+	for _, p := range r.Policies {
+		fmt.Fprintf(w, "%-*s %11.2f %9s %11.1f %13.0f %12.2f\n", wn, p.Name, p.MeanCost, fmt.Sprintf("±%.2f", p.CI95), p.MeanSteps, p.QPerDecision, p.MsPerDecision)
 	}
 	for _, s := range r.Skipped {
 		fmt.Fprintln(w, s)

@@ -57,3 +57,26 @@ func (m *Model) PointLevel(s model.State, site int) (int, bool) {
 	st := s.(*State)
 	return pointLevel(st.bel[site*m.k : (site+1)*m.k])
 }
+
+// Toward is the control that moves a robot at site a one road toward site
+// b on a shortest path (0 when a is b).
+func (m *Model) Toward(a, b int) int { return m.hop[a*m.n+b] }
+
+// Due reports whether site is due for service in s as the base policy
+// sees it: the chance it is at or past the threshold level exceeds the
+// threshold probability.
+func (m *Model) Due(s model.State, site int) bool {
+	st := s.(*State)
+	q := 0.0
+	for _, v := range st.bel[site*m.k+m.threshLevel : (site+1)*m.k] {
+		q += v
+	}
+	return q > m.threshProb
+}
+
+// SurelyWorn reports whether robot r's site is surely not at level 0 in s
+// (the base policy services it then).
+func (m *Model) SurelyWorn(s model.State, r int) bool {
+	st := s.(*State)
+	return st.bel[st.pos[r]*m.k] == 0
+}

@@ -1,0 +1,76 @@
+package assign
+
+import (
+	"fmt"
+	"testing"
+
+	"baton/sim/exact"
+	"baton/sim/harbor"
+	"baton/sim/model"
+	"baton/sim/upkeep"
+)
+
+// Rollout improves on the assignment policy as on any base policy
+// (Bertsekas, "Multiagent rollout algorithms and reinforcement learning",
+// arXiv:1910.00120: the cost improvement property): on exact tiny
+// instances, one-at-a-time rollout with the assignment policy as its base
+// costs no more than the assignment policy at any state, and the
+// assignment policy itself is a valid policy (exactly evaluated).
+func TestRolloutOnAssignmentImproves(t *testing.T) {
+	for _, sc := range []struct {
+		name string
+		tiny func(uint64) model.Model
+	}{
+		{"harbor", func(s uint64) model.Model { return harbor.RandomTiny(s) }},
+		{"upkeep", func(s uint64) model.Model { return upkeep.RandomTiny(s) }},
+	} {
+		for seed := uint64(1); seed <= 10; seed++ {
+			t.Run(fmt.Sprintf("%s/seed=%d", sc.name, seed), func(t *testing.T) {
+				m := sc.tiny(seed)
+				a, err := Wrap(m)
+				if err != nil {
+					t.Fatal(err)
+				}
+				e, ok := a.(model.Enumerable)
+				if !ok {
+					t.Fatal("the wrapped model lost Enumerable")
+				}
+				start := a.NewState()
+				a.Start(start, model.NewRNG(seed).Rand)
+				sp, err := exact.Enumerate(e, start, 20000)
+				if err != nil {
+					t.Fatal(err)
+				}
+				mu := exact.BasePolicy(sp)
+				Jmu, err := exact.EvaluatePolicy(sp, mu)
+				if err != nil {
+					t.Fatal(err)
+				}
+				order := make([]int, sp.Robots())
+				for r := range order {
+					order[r] = r
+				}
+				roll := exact.OneAtATime(sp, mu, Jmu, order)
+				J, err := exact.EvaluatePolicy(sp, roll.Policy)
+				if err != nil {
+					t.Fatal(err)
+				}
+				for x := range J {
+					if J[x] > Jmu[x]+1e-9*(1+Jmu[x]) {
+						t.Fatalf("state %d: rollout on assignment costs %.9g, assignment %.9g", x, J[x], Jmu[x])
+					}
+				}
+			})
+		}
+	}
+}
+
+func TestWrapUnknownScenario(t *testing.T) {
+	if _, err := Wrap(fakeModel{}); err == nil {
+		t.Fatal("wrapped a scenario without targets")
+	}
+}
+
+type fakeModel struct{ model.Model }
+
+func (fakeModel) Name() string { return "orchard" }
