@@ -21,7 +21,8 @@
 // A harbor file sets Config's fields in YAML (deploy/examples/harbor-tiny.yaml)
 // and is read through sim/config: at most config.MaxFileBytes, parsed in at
 // most config.AllocPerByte bytes per input byte plus config.AllocFixed (the
-// model itself is a few hundred bytes), problems reported as
+// model itself is a few hundred bytes, plus coordinate tables of at most
+// 256 kB for grids up to 65536 cells), problems reported as
 // "FILE:LINE: FIELD: message". Every size the file sets is bounded: a grid
 // of at most 1000 x 1000 cells, at most 256 boats (and so launch cells),
 // at most 1000 slicks (and so slick cells), at most 100000 steps.
@@ -56,8 +57,13 @@ var dy = [numControls]int{0, 1, -1, 0, 0}
 
 // Model is one configured harbor.
 type Model struct {
-	cfg     Config
-	w, h    int
+	cfg  Config
+	w, h int
+	// xs, ys are each cell's coordinates (grids up to tableCells), and
+	// step[u] the cell offset of control u: the hot paths (Base, moves,
+	// distances) then divide nothing.
+	xs, ys  []int16
+	step    [numControls]int32
 	drift   float64
 	cumDir  [4]float64 // cumulative direction weights N,S,E,W, normalised to 1
 	current int        // index into N,S,E,W of the current, or -1
@@ -84,6 +90,15 @@ func New(cfg Config) (*Model, error) {
 
 func newModel(cfg Config) *Model {
 	m := &Model{cfg: cfg, w: cfg.Width, h: cfg.Height, drift: cfg.Drift, current: -1}
+	if m.w*m.h <= tableCells {
+		m.xs, m.ys = make([]int16, m.w*m.h), make([]int16, m.w*m.h)
+		for c := range m.xs {
+			m.xs[c], m.ys[c] = int16(c%m.w), int16(c/m.w)
+		}
+	}
+	for u := range m.step {
+		m.step[u] = int32(dx[u] + dy[u]*m.w)
+	}
 	wts := [4]float64{1, 1, 1, 1}
 	if cfg.Current != "" {
 		m.current = strings.Index("NSEW", cfg.Current)
@@ -114,7 +129,17 @@ func (m *Model) Height() int       { return m.h }
 func (m *Model) Cell(x, y int) int32 { return int32(y*m.w + x) }
 
 // XY is the inverse of Cell.
-func (m *Model) XY(c int32) (x, y int) { return int(c) % m.w, int(c) / m.w }
+func (m *Model) XY(c int32) (x, y int) {
+	if m.xs != nil {
+		return int(m.xs[c]), int(m.ys[c])
+	}
+	return int(c) % m.w, int(c) / m.w
+}
+
+// tableCells bounds the grids whose coordinates are tabled (256 kB of
+// tables): the harbors sites use are far smaller, and a file's model stays
+// within the loader's documented allocation bound.
+const tableCells = 1 << 16
 
 func (m *Model) NewState() model.State {
 	return &State{Boats: make([]int32, m.cfg.Robots), Slicks: make([]int32, m.cfg.Slicks)}
@@ -179,11 +204,12 @@ func (m *Model) Terminal(st model.State) bool { return st.(*State).Left == 0 }
 
 // move returns the cell reached from c by control u (clamped to the grid).
 func (m *Model) move(c int32, u int) int32 {
-	x, y := int(c)%m.w+dx[u], int(c)/m.w+dy[u]
+	x, y := m.XY(c)
+	x, y = x+dx[u], y+dy[u]
 	if x < 0 || x >= m.w || y < 0 || y >= m.h {
 		return c
 	}
-	return int32(y*m.w + x)
+	return c + m.step[u]
 }
 
 func (m *Model) collect(s *State) {
@@ -244,19 +270,20 @@ func abs(v int) int {
 func (m *Model) Base(st model.State, r int) int {
 	s := st.(*State)
 	b := s.Boats[r]
+	bx, by := m.XY(b)
 	best, bestD := int32(-1), 1<<30
 	for _, c := range s.Slicks {
 		if c < 0 {
 			continue
 		}
-		if d := m.dist(b, c); d < bestD || (d == bestD && c < best) {
+		cx, cy := m.XY(c)
+		if d := abs(cx-bx) + abs(cy-by); d < bestD || (d == bestD && c < best) {
 			best, bestD = c, d
 		}
 	}
 	if best < 0 {
 		return Hold
 	}
-	bx, by := m.XY(b)
 	tx, ty := m.XY(best)
 	switch {
 	case tx > bx:
