@@ -86,11 +86,15 @@ type Decider struct {
 	joint   []int
 }
 
+// worker is one goroutine's scratch, a cache line of padding on each side
+// (workers write their own all the time: they must not share a line).
 type worker struct {
+	_   [64]byte
 	s   model.State
 	u   []int
 	rng *model.RNG
 	sim int64
+	_   [64]byte
 }
 
 // New makes a Decider for m.
@@ -101,7 +105,8 @@ func New(m model.Model, cfg Config) *Decider {
 		d.term, _ = m.(model.TerminalCoster)
 	}
 	for range cfg.Workers {
-		d.workers = append(d.workers, &worker{s: m.NewState(), u: make([]int, m.Robots()), rng: model.NewRNG(0)})
+		r := m.Robots()
+		d.workers = append(d.workers, &worker{s: m.NewState(), u: make([]int, r+16)[8 : 8+r : 8+r], rng: model.NewRNG(0)})
 	}
 	return d
 }
@@ -115,7 +120,8 @@ func (d *Decider) simulate(w *worker, x model.State, u []int, seed uint64, sampl
 	m.CopyState(w.s, x)
 	w.rng.Reseed(model.Mix(seed, uint64(sample), 0))
 	cost := m.Step(w.s, u, w.rng.Rand)
-	w.sim++
+	steps := int64(1)
+	defer func() { w.sim += steps }()
 	a := m.Discount()
 	disc := 1.0
 	for t := 1; t <= d.cfg.Horizon; t++ {
@@ -126,7 +132,7 @@ func (d *Decider) simulate(w *worker, x model.State, u []int, seed uint64, sampl
 		model.BaseJoint(m, w.s, w.u)
 		w.rng.Reseed(model.Mix(seed, uint64(sample), uint64(t)))
 		cost += disc * m.Step(w.s, w.u, w.rng.Rand)
-		w.sim++
+		steps++
 	}
 	if d.term != nil && !m.Terminal(w.s) {
 		cost += disc * a * d.term.TerminalCost(w.s)

@@ -110,8 +110,10 @@ func TestTurnAllocs(t *testing.T) {
 	}
 }
 
-func benchTurn(b *testing.B, m model.Model, x model.State) {
-	d := New(m, Config{Workers: 1, Samples: 16, Horizon: 20})
+func benchTurn(b *testing.B, m model.Model, x model.State) { benchTurnWorkers(b, m, x, 1) }
+
+func benchTurnWorkers(b *testing.B, m model.Model, x model.State, workers int) {
+	d := New(m, Config{Workers: workers, Samples: 16, Horizon: 20})
 	known := make([]int, m.Robots())
 	for i := range known {
 		known[i] = -1
@@ -132,6 +134,13 @@ func benchTurn(b *testing.B, m model.Model, x model.State) {
 func BenchmarkTurnHarbor(b *testing.B) {
 	m, x := harborStart(b, 4)
 	benchTurn(b, m, x)
+}
+
+// The same turn on two workers: against BenchmarkTurnHarbor, how far two
+// cores go (workers share nothing they write).
+func BenchmarkTurnHarbor2Workers(b *testing.B) {
+	m, x := harborStart(b, 4)
+	benchTurnWorkers(b, m, x, 2)
 }
 
 func BenchmarkTurnUpkeep(b *testing.B) {

@@ -142,7 +142,20 @@ func (m *Model) XY(c int32) (x, y int) {
 const tableCells = 1 << 16
 
 func (m *Model) NewState() model.State {
-	return &State{Boats: make([]int32, m.cfg.Robots), Slicks: make([]int32, m.cfg.Slicks)}
+	// A cache line of nothing on both sides of what a step writes (the
+	// counts and the cells), so rollout workers, each stepping a state of
+	// its own, never write the same line.
+	p := &paddedState{}
+	nb, ns := m.cfg.Robots, m.cfg.Slicks
+	buf := make([]int32, 16+nb+ns+16)
+	p.s.Boats, p.s.Slicks = buf[16:16+nb:16+nb], buf[16+nb:16+nb+ns:16+nb+ns]
+	return &p.s
+}
+
+type paddedState struct {
+	_ [64]byte
+	s State
+	_ [64]byte
 }
 
 func (m *Model) CopyState(dst, src model.State) {

@@ -186,7 +186,11 @@ func (m *Model) MaxControls() int { return m.maxControls }
 
 // NewState allocates a zeroed *State.
 func (m *Model) NewState() model.State {
-	return &State{pos: make([]int, m.robots), bel: make([]float64, m.n*m.k)}
+	// A cache line of nothing on both sides of what a step writes, so
+	// rollout workers, each stepping a state of its own, never write the
+	// same line.
+	nb := m.n * m.k
+	return &State{pos: make([]int, m.robots+16)[8 : 8+m.robots : 8+m.robots], bel: make([]float64, nb+16)[8 : 8+nb : 8+nb]}
 }
 
 // CopyState copies src into dst.
