@@ -146,7 +146,6 @@ type Hub struct {
 	acks    chan uint64
 	gateDue chan uint64 // gates held GateWait: the messages go out anyway
 	outbox  []outItem
-	gates   int
 }
 
 type journalJob struct {
@@ -343,7 +342,7 @@ func (h *Hub) apply(acts []clock.Action) (done bool, err error) {
 	for _, a := range acts {
 		switch a.(type) {
 		case clock.SendStart, clock.SendClose, clock.SendHello:
-			if h.gates > 0 {
+			if len(h.outbox) > 0 { // a gate holds it: empty, or a gate first
 				h.outbox = append(h.outbox, outItem{act: a})
 				continue
 			}
@@ -471,7 +470,6 @@ func (h *Hub) enqueue(j journalJob) {
 	select {
 	case h.jobs <- j:
 		if j.gate != 0 {
-			h.gates++
 			h.outbox = append(h.outbox, outItem{gate: j.gate})
 			r := j.gate
 			time.AfterFunc(h.cfg.GateWait, func() {
@@ -506,9 +504,8 @@ func (h *Hub) release(round uint64) ([]clock.Action, error) {
 	if i < 0 {
 		return nil, nil // already let go (GateWait), or stored after that
 	}
-	h.gates--
 	h.outbox = slices.Delete(h.outbox, i, i+1)
-	if i > 0 && h.outbox[0].act == nil {
+	if i > 0 {
 		return nil, nil // an earlier round's gate still holds what follows
 	}
 	var acts []clock.Action

@@ -285,7 +285,7 @@ func (f *FleetFile) Args(role string, robot int) ([]string, error) {
 // (if any) before args, so what the command line gives wins. For agentd,
 // the robot is the command line's --robot.
 func ExpandFleetFile(args []string, role string) ([]string, error) {
-	file, rest := flagValue(args, "fleet-file")
+	file, rest := flagValue(args, "fleet-file"), withoutFlag(args, "fleet-file")
 	if file == "" {
 		return args, nil
 	}
@@ -304,7 +304,7 @@ func ExpandFleetFile(args []string, role string) ([]string, error) {
 	}
 	robot := -1
 	if role == RoleAgentd {
-		v, _ := flagValue(args, "robot")
+		v := flagValue(args, "robot")
 		if v == "" {
 			return nil, fmt.Errorf("--fleet-file %s: give --robot ID too (which robot of the fleet this is)", file)
 		}
@@ -315,7 +315,7 @@ func ExpandFleetFile(args []string, role string) ([]string, error) {
 	// A robot count on the command line that is not the file's would
 	// make the file's robots (ids, names, starts) wrong: a conflict, not
 	// an override.
-	if v, _ := flagValue(rest, "robots"); v != "" && v != strconv.Itoa(len(f.Robots)) {
+	if v := flagValue(rest, "robots"); v != "" && v != strconv.Itoa(len(f.Robots)) {
 		return nil, fmt.Errorf("--robots %s conflicts with --fleet-file %s, which lists %d robots: change the file's robots instead", v, file, len(f.Robots))
 	}
 	fileArgs, err := f.Args(role, robot)
@@ -325,20 +325,13 @@ func ExpandFleetFile(args []string, role string) ([]string, error) {
 	return append(fileArgs, rest...), nil
 }
 
-// flagValue finds -name/--name VALUE or --name=VALUE in args (before a
-// "--"), and returns its value and args without the fleet-file flag.
-func flagValue(args []string, name string) (string, []string) {
+// flagValue is the value of -name/--name VALUE or --name=VALUE in args
+// (the last one given; "" when absent), before any "--".
+func flagValue(args []string, name string) string {
 	var val string
-	var rest []string
-	for i := 0; i < len(args); i++ {
-		a := args[i]
-		if a == "--" {
-			rest = append(rest, args[i:]...)
-			break
-		}
-		k, v, hasV := strings.Cut(strings.TrimLeft(a, "-"), "=")
-		if !strings.HasPrefix(a, "-") || k != name {
-			rest = append(rest, a)
+	for i := 0; i < len(args) && args[i] != "--"; i++ {
+		k, v, hasV := strings.Cut(strings.TrimLeft(args[i], "-"), "=")
+		if !strings.HasPrefix(args[i], "-") || k != name {
 			continue
 		}
 		switch {
@@ -348,16 +341,25 @@ func flagValue(args []string, name string) (string, []string) {
 			val = args[i+1]
 			i++
 		}
-		if name != "fleet-file" {
-			rest = append(rest, args[i-boolInt(!hasV):i+1]...)
-		}
 	}
-	return val, rest
+	return val
 }
 
-func boolInt(b bool) int {
-	if b {
-		return 1
+// withoutFlag is args without -name/--name VALUE and --name=VALUE.
+func withoutFlag(args []string, name string) []string {
+	var out []string
+	for i := 0; i < len(args); i++ {
+		if args[i] == "--" {
+			return append(out, args[i:]...)
+		}
+		k, _, hasV := strings.Cut(strings.TrimLeft(args[i], "-"), "=")
+		if !strings.HasPrefix(args[i], "-") || k != name {
+			out = append(out, args[i])
+			continue
+		}
+		if !hasV {
+			i++ // its value
+		}
 	}
-	return 0
+	return out
 }

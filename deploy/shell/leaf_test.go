@@ -68,7 +68,7 @@ func TestLeafNodeOnRobot(t *testing.T) {
 		if opts.JetStreamDomain != HubDomain || opts.LeafNode.Port != leafPort[x] {
 			t.Fatalf("node-%s.conf: JetStream domain %q (want %q), leaf node port %d", x, opts.JetStreamDomain, HubDomain, opts.LeafNode.Port)
 		}
-		hub[x] = leafStartServer(t, opts)
+		hub[x] = startServer(t, opts)
 		hubURLs = append(hubURLs, hub[x].ClientURL())
 	}
 
@@ -84,14 +84,14 @@ func TestLeafNodeOnRobot(t *testing.T) {
 		t.Fatalf("leaf-robot.conf with robot 1's identity: jetstream %v, remotes %+v, %d local users", leafOpts.JetStream,
 			leafOpts.LeafNode.Remotes, len(leafOpts.Nkeys))
 	}
-	leaf := leafStartServer(t, leafOpts)
+	leaf := startServer(t, leafOpts)
 	// A leaf with no key is refused by the cluster.
 	anonOpts := leafLoadConf(t, filepath.Join("..", "nats", "leaf-robot.conf"), filepath.Join(dir, "anonymous-leaf"),
 		map[string]string{"leaf-identity.conf": "server_name: anonymous-leaf\n"}, append(leafRW, "nkey: $LEAF_SEED", "")...)
 	if len(anonOpts.LeafNode.Remotes) != 1 || anonOpts.LeafNode.Remotes[0].Nkey != "" {
 		t.Fatalf("the anonymous leaf: remotes %+v", anonOpts.LeafNode.Remotes)
 	}
-	anon := leafStartServer(t, anonOpts)
+	anon := startServer(t, anonOpts)
 
 	lg := zap.NewNop()
 	errs := make(chan error, 16)
@@ -210,7 +210,7 @@ func TestLeafNodeOnRobot(t *testing.T) {
 	if len(openOpts.Nkeys) != 0 || openOpts.LeafNode.Remotes[0].Nkey != string(ids[2].Seed) {
 		t.Fatalf("the open leaf: %d local users, remotes %+v", len(openOpts.Nkeys), openOpts.LeafNode.Remotes)
 	}
-	openLeaf := leafStartServer(t, openOpts)
+	openLeaf := startServer(t, openOpts)
 	anyone, err := nats.Connect(openLeaf.ClientURL(), nats.MaxReconnects(0))
 	if err != nil {
 		t.Fatal(err)
@@ -305,21 +305,6 @@ func leafLoadConf(t *testing.T, path, dir string, includes map[string]string, re
 		t.Fatalf("%s does not load: %v\n%s", path, err, text)
 	}
 	return opts
-}
-
-func leafStartServer(t *testing.T, opts *server.Options) *server.Server {
-	t.Helper()
-	opts.NoLog, opts.NoSigs = true, true
-	ns, err := server.NewServer(opts)
-	if err != nil {
-		t.Fatal(err)
-	}
-	go ns.Start()
-	t.Cleanup(ns.Shutdown)
-	if !ns.ReadyForConnections(10 * time.Second) {
-		t.Fatal("server not ready")
-	}
-	return ns
 }
 
 func leafFreePort(t *testing.T) int {

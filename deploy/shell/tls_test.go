@@ -60,6 +60,11 @@ func TestTLS(t *testing.T) {
 // runServer starts a NATS server in-process for the test and returns its
 // client URL; it stops with the test.
 func runServer(t *testing.T, opts *server.Options) string {
+	return startServer(t, opts).ClientURL()
+}
+
+// startServer starts a NATS server in-process; it stops with the test.
+func startServer(t *testing.T, opts *server.Options) *server.Server {
 	t.Helper()
 	opts.NoLog, opts.NoSigs = true, true
 	ns, err := server.NewServer(opts)
@@ -71,5 +76,5 @@ func runServer(t *testing.T, opts *server.Options) string {
 	if !ns.ReadyForConnections(10 * time.Second) {
 		t.Fatal("server not ready")
 	}
-	return ns.ClientURL()
+	return ns
 }

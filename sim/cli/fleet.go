@@ -768,7 +768,7 @@ exactly what the real fleet decides for the same flags: compare decisions_sha256
 		f.close()
 	}
 	sum.Batches = w.Batch
-	sum.CostKind = fleetsum.CostKind(w.M.Name())
+	sum.CostKind = fleetsum.CostKind(w.M)
 	if o.trueWear {
 		tc := w.TrueCost
 		sum.TrueCost = &tc

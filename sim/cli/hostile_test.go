@@ -191,11 +191,7 @@ func TestFleetCoordinatorKilled(t *testing.T) {
 		res.Runs[0].Last != 4 || res.Runs[0].Unfiled != 1 || res.First != 1 {
 		t.Fatalf("durable log: %s, runs %+v", res.Summary(), res.Runs)
 	}
-	replayed := 0.0
-	for _, c := range res.StageCosts[:7] {
-		replayed += c
-	}
-	if replayed != cost {
+	if replayed := res.costOf(7); replayed != cost {
 		t.Fatalf("replaying rounds 1-7 costs %.17g, the world charged %.17g", replayed, cost)
 	}
 	// The new run's first round decided on the positions the robots

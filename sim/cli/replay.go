@@ -59,10 +59,12 @@ type replayRun struct {
 
 // replayResult is what `sim replay` reports.
 type replayResult struct {
-	Source    string      `json:"source"`
-	Scenario  string      `json:"scenario"`
-	Robots    int         `json:"robots"`
-	Digest    string      `json:"digest"`
+	Source   string `json:"source"`
+	Scenario string `json:"scenario"`
+	Robots   int    `json:"robots"`
+	Digest   string `json:"digest"`
+	// StageKind says what the logged stage costs are (model.StageKind).
+	StageKind string      `json:"stage_kind"`
 	Rounds    int         `json:"rounds"`
 	First     uint64      `json:"first_round"`
 	Last      uint64      `json:"last_round"`
@@ -81,6 +83,15 @@ type replayResult struct {
 	StageCosts []float64 `json:"stage_costs"`
 
 	rounds []replayRound
+}
+
+// costOf is the recomputed cost of the log's first n rounds.
+func (r replayResult) costOf(n int) float64 {
+	c := 0.0
+	for _, s := range r.StageCosts[:min(n, len(r.StageCosts))] {
+		c += s
+	}
+	return c
 }
 
 // Continuous: every round from the first to the last is there once.
@@ -176,7 +187,7 @@ func readLogStream(ctx context.Context, nc *nats.Conn, prefix, fleet string, raw
 // numbering; then recomputes every round's stage cost on m (digest: the
 // scenario's, checked against every record's).
 func assemble(lines []hub.Line, m model.Fleet, digest string) (replayResult, error) {
-	res := replayResult{Scenario: m.Name(), Robots: m.Robots(), Digest: digest}
+	res := replayResult{Scenario: m.Name(), Robots: m.Robots(), Digest: digest, StageKind: model.StageKind(m)}
 	type key struct{ epoch, round uint64 }
 	at := map[key]int{}
 	for _, l := range lines {
@@ -375,7 +386,7 @@ func replayFrames(res replayResult, fleet string, m model.Fleet) (view.Site, []v
 	}
 	site.Mode, site.Source = "replay", res.Source
 	site.Summary = replaySummary{Source: res.Source, Rounds: res.Rounds, First: res.First, Last: res.Last, Runs: res.Runs,
-		Cost: res.Cost, Logged: res.Logged, CostKind: costKind(res.Scenario), Log: res.Summary()}
+		Cost: res.Cost, Logged: res.Logged, CostKind: res.StageKind, Log: res.Summary()}
 	frames := make([]view.Frame, 0, len(res.rounds))
 	for _, r := range res.rounds {
 		rec := r.Record
@@ -485,13 +496,5 @@ func printReplay(w io.Writer, res replayResult, rounds bool) {
 	if res.Interrupt > 0 {
 		fmt.Fprintf(w, "%d record(s) of rounds interrupted mid-round (played again by the next run) are not counted\n", res.Interrupt)
 	}
-	fmt.Fprintf(w, "stage costs are the coordinator's (%s)\n", costKind(res.Scenario))
-}
-
-// costKind says what a scenario's logged stage cost is.
-func costKind(scenario string) string {
-	if scenario == "upkeep" {
-		return "expected over the coordinator's belief of wear, not the true wear"
-	}
-	return "of the logged, fully observed state"
+	fmt.Fprintf(w, "stage costs are the coordinator's (%s)\n", res.StageKind)
 }

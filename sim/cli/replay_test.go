@@ -37,11 +37,7 @@ func TestReplayReproducesFleetCost(t *testing.T) {
 	if res.Rounds < 12 || res.First != 1 || !res.Continuous() || res.MaxDiff != 0 {
 		t.Fatalf("%s, max difference %g", res.Summary(), res.MaxDiff)
 	}
-	sum := 0.0
-	for _, c := range res.StageCosts[:12] {
-		sum += c
-	}
-	if sum != cost {
+	if sum := res.costOf(12); sum != cost {
 		t.Fatalf("replayed cost of rounds 1-12 %.17g, the world charged %.17g", sum, cost)
 	}
 	out, err := exec.Command(simBin, "replay", "--file", f.durableLog(), "--scenario", "harbor", "--robots", "3", "--json").Output()

@@ -75,15 +75,7 @@ func CostKind(m model.Model) string {
 	if d := m.Discount(); d < 1 {
 		sum = fmt.Sprintf("discounted sum of stage costs per episode (factor %g)", d)
 	}
-	return fmt.Sprintf("%s, %s; mean over episodes", sum, stageKind(m.Name()))
-}
-
-// stageKind says what a scenario's stage cost is.
-func stageKind(scenario string) string {
-	if scenario == "upkeep" {
-		return "each stage cost the expectation over the belief of wear"
-	}
-	return "each stage cost that of the simulated state"
+	return fmt.Sprintf("%s, %s; mean over episodes", sum, model.StageKind(m))
 }
 
 // Run plays every policy on episodes 0..Episodes-1 of the run seed.

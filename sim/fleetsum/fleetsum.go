@@ -4,6 +4,7 @@
 package fleetsum
 
 import (
+	"baton/sim/model"
 	"crypto/sha256"
 	"encoding/binary"
 	"encoding/hex"
@@ -120,11 +121,8 @@ func Quantile(xs []float64, q float64) float64 {
 	return s[int(q*float64(len(s)-1)+0.5)]
 }
 
-// CostKind says what a fleet run's cost is for a scenario: the world's
+// CostKind says what a fleet run's cost is for scenario m: the world's
 // stage costs summed without discount.
-func CostKind(scenario string) string {
-	if scenario == "upkeep" {
-		return "undiscounted sum of stage costs, each the expectation over the belief of wear (the simulator draws a site's level only when a robot sees it)"
-	}
-	return "undiscounted sum of the simulated world's stage costs"
+func CostKind(m model.Model) string {
+	return "undiscounted sum of the world's stage costs, " + model.StageKind(m)
 }

@@ -17,3 +17,13 @@ type Truther interface {
 	// TrueSense is what robot r sees of the truth from its position in s.
 	TrueSense(truth []int32, s State, r int, dst []Sighting) []Sighting
 }
+
+// StageKind says what m's stage cost is: that of the simulated state, or,
+// for a belief-state scenario (one whose world can keep a hidden truth),
+// the expectation over the belief.
+func StageKind(m Model) string {
+	if _, belief := m.(Truther); belief {
+		return "each stage cost the expectation over the belief of the hidden state"
+	}
+	return "each stage cost that of the simulated state"
+}
