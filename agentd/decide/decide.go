@@ -218,11 +218,12 @@ func (d *Decider) QFactors(x model.State, cands [][]int, seed uint64) ([]Estimat
 func (d *Decider) Turn(x model.State, r int, known []int, seed uint64) (int, Stats) {
 	m := d.m
 	n := m.NumControls(x, r)
+	// One BaseJoint rather than a Base per robot: a fleet-wide base policy
+	// (an assignment, an auction) then solves once per turn.
+	model.BaseJoint(m, x, d.joint)
 	for j := range d.joint {
 		if j != r && known[j] >= 0 {
 			d.joint[j] = known[j]
-		} else {
-			d.joint[j] = m.Base(x, j)
 		}
 	}
 	base := d.joint[r]

@@ -14,6 +14,7 @@ import (
 // grid distance; upkeep: sites due for service, by road distance, after
 // servicing the robot's own site when it is surely worn). Rollout on the
 // wrapped model improves on the assignment policy as it does on any base.
+// The wrapped model is a model.JointBaser: one solve serves every robot.
 func Wrap(m model.Model) (model.Model, error) {
 	switch m := m.(type) {
 	case *harbor.Model:
@@ -27,8 +28,13 @@ func Wrap(m model.Model) (model.Model, error) {
 type harborAssign struct{ *harbor.Model }
 
 func (h harborAssign) Base(s model.State, r int) int {
+	u := make([]int, h.Robots())
+	h.BaseAll(s, u)
+	return u[r]
+}
+
+func (h harborAssign) BaseAll(s model.State, u []int) {
 	st := s.(*harbor.State)
-	w := h.Width()
 	var targets []int32
 	for _, c := range st.Slicks {
 		if c >= 0 {
@@ -36,66 +42,62 @@ func (h harborAssign) Base(s model.State, r int) int {
 		}
 	}
 	if len(targets) == 0 {
-		return harbor.Hold
+		for r := range u {
+			u[r] = harbor.Hold
+		}
+		return
 	}
 	cost := make([][]float64, len(st.Boats))
 	for i, b := range st.Boats {
 		cost[i] = make([]float64, len(targets))
 		for j, c := range targets {
-			cost[i][j] = float64(abs(int(b)%w-int(c)%w) + abs(int(b)/w-int(c)/w))
+			cost[i][j] = float64(h.Distance(b, c))
 		}
 	}
 	to, _ := Solve(cost)
-	if to[r] < 0 {
-		return harbor.Hold
+	for r := range u {
+		u[r] = harbor.Hold
+		if to[r] >= 0 {
+			u[r] = h.Toward(st.Boats[r], targets[to[r]])
+		}
 	}
-	b, c := int(st.Boats[r]), int(targets[to[r]])
-	switch dx, dy := c%w-b%w, c/w-b/w; {
-	case dx > 0:
-		return harbor.East
-	case dx < 0:
-		return harbor.West
-	case dy > 0:
-		return harbor.North
-	case dy < 0:
-		return harbor.South
-	}
-	return harbor.Hold
 }
 
 type upkeepAssign struct{ *upkeep.Model }
 
-func (u upkeepAssign) Base(s model.State, r int) int {
-	if u.SurelyWorn(s, r) {
-		return 0 // service where it stands
-	}
-	pos := u.Positions(s)
+func (k upkeepAssign) Base(s model.State, r int) int {
+	u := make([]int, k.Robots())
+	k.BaseAll(s, u)
+	return u[r]
+}
+
+func (k upkeepAssign) BaseAll(s model.State, u []int) {
+	pos := k.Positions(s)
 	var targets []int
-	for site := range u.NumSites() {
-		if u.Due(s, site) {
+	for site := range k.NumSites() {
+		if k.Due(s, site) {
 			targets = append(targets, site)
 		}
 	}
-	if len(targets) == 0 {
-		return 0
+	var to []int
+	if len(targets) > 0 {
+		cost := make([][]float64, len(pos))
+		for i, p := range pos {
+			cost[i] = make([]float64, len(targets))
+			for j, t := range targets {
+				cost[i][j] = float64(k.Distance(p, t))
+			}
+		}
+		to, _ = Solve(cost)
 	}
-	cost := make([][]float64, len(pos))
-	for i, p := range pos {
-		cost[i] = make([]float64, len(targets))
-		for j, t := range targets {
-			cost[i][j] = float64(u.Distance(p, t))
+	for r := range u {
+		switch {
+		case k.SurelyWorn(s, r):
+			u[r] = 0 // service where it stands
+		case to == nil || to[r] < 0:
+			u[r] = 0
+		default:
+			u[r] = k.Toward(pos[r], targets[to[r]])
 		}
 	}
-	to, _ := Solve(cost)
-	if to[r] < 0 {
-		return 0
-	}
-	return u.Toward(pos[r], targets[to[r]])
-}
-
-func abs(x int) int {
-	if x < 0 {
-		return -x
-	}
-	return x
 }

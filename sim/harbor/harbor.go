@@ -297,7 +297,18 @@ func (m *Model) Base(st model.State, r int) int {
 	if best < 0 {
 		return Hold
 	}
-	tx, ty := m.XY(best)
+	return m.Toward(b, best)
+}
+
+// Distance is the grid (Manhattan) distance between cells a and b.
+func (m *Model) Distance(a, b int32) int { return m.dist(a, b) }
+
+// Toward is the control that takes a boat at cell from one step toward cell
+// to: east/west first until the column matches, then north/south; Hold
+// when it is there.
+func (m *Model) Toward(from, to int32) int {
+	bx, by := m.XY(from)
+	tx, ty := m.XY(to)
 	switch {
 	case tx > bx:
 		return East

@@ -75,8 +75,20 @@ type Enumerable interface {
 	Outcomes(s State, u []int, fn func(next State, p, cost float64))
 }
 
+// JointBaser is implemented by models whose base policy decides for the
+// whole fleet at once (an assignment, an auction): BaseAll fills u with
+// every robot's base control in s, equal to Base(s, r) for each r, at the
+// cost of one solve rather than one per robot.
+type JointBaser interface {
+	BaseAll(s State, u []int)
+}
+
 // BaseJoint fills u with the base policy's controls for every robot in s.
 func BaseJoint(m Model, s State, u []int) {
+	if jb, ok := m.(JointBaser); ok {
+		jb.BaseAll(s, u)
+		return
+	}
 	for r := range u {
 		u[r] = m.Base(s, r)
 	}
