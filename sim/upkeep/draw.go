@@ -27,7 +27,7 @@ func (m *Model) Items(s model.State) []model.Item {
 	st := s.(*State)
 	out := make([]model.Item, m.n)
 	for site := range m.n {
-		bel := st.bel[site*m.k : (site+1)*m.k]
+		bel := m.belief(st, site)
 		mean, over := 0.0, 0.0
 		for lvl, p := range bel {
 			mean += float64(lvl) * p

@@ -48,7 +48,7 @@ func (m *Model) Sense(s model.State, r int, dst []model.Sighting) []model.Sighti
 }
 
 func (m *Model) senseSite(st *State, site int, dst []model.Sighting) []model.Sighting {
-	if l, ok := pointLevel(st.bel[site*m.k : (site+1)*m.k]); ok {
+	if l, ok := pointLevel(m.belief(st, site)); ok {
 		dst = append(dst, model.Sighting{What: int32(site), Value: int32(l)})
 	}
 	return dst
@@ -103,7 +103,10 @@ func (m *Model) Flatten(s model.State, ints []int32, reals []float64) ([]int32, 
 	for _, p := range st.pos {
 		ints = append(ints, int32(p))
 	}
-	return ints, append(reals, st.bel...)
+	for site := range m.n {
+		reals = append(reals, m.belief(st, site)...)
+	}
+	return ints, reals
 }
 
 // Unflatten is the inverse of Flatten. Beliefs must be finite, non-negative
@@ -143,5 +146,8 @@ func (m *Model) Unflatten(dst model.State, ints []int32, reals []float64) error 
 		st.pos[r] = int(p)
 	}
 	copy(st.bel, reals)
+	for site := range m.n {
+		st.ti[site] = m.rowOf(site, st.bel[site*m.k:site*m.k+m.k])
+	}
 	return nil
 }

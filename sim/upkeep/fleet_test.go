@@ -134,7 +134,7 @@ func TestSense(t *testing.T) {
 	}
 	// A spread belief is not reported: a robot on it would have seen one
 	// level, and the state cannot say which.
-	copy(own.Belief(s, 0), []float64{0.5, 0.25, 0.25})
+	own.SetBelief(s, 0, []float64{0.5, 0.25, 0.25})
 	if got := own.Sense(s, 0, nil); len(got) != 0 {
 		t.Errorf("own: a spread belief was reported as %v", got)
 	}
@@ -196,7 +196,7 @@ func TestAbsorbErrors(t *testing.T) {
 	}
 	s := start(m)
 	// A spread belief, so that a wrongly applied Observe would show.
-	copy(m.Belief(s, 1), []float64{0.25, 0.5, 0.25})
+	m.SetBelief(s, 1, []float64{0.25, 0.5, 0.25})
 	bi, br := m.Flatten(s, nil, nil)
 	for _, c := range cases {
 		err := m.Absorb(s, c.r, c.pos, c.seen)

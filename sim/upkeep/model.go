@@ -18,10 +18,16 @@ const MaxLevels = 8
 const maxSites = 1000
 
 // State is the fleet's belief state: robot positions and one probability
-// vector over levels per site, all sites in one flat slice (site s owns
-// bel[s*(L+1) : (s+1)*(L+1)]) so copying is two copies and nothing allocates.
+// vector over levels per site. A site last seen at level l, t steps ago,
+// believes row l of P^t: that vector is the model's table row ti[site]
+// (built once with Advance's own arithmetic, so it is bit for bit what
+// repeated propagation gives). Beliefs the tables do not hold (older than
+// the tables, or arbitrary ones set from outside) live in bel (site s owns
+// bel[s*(L+1) : (s+1)*(L+1)]) with ti[site] = -1. Copying is three copies
+// and nothing allocates.
 type State struct {
 	pos []int
+	ti  []int32
 	bel []float64
 }
 
@@ -47,7 +53,24 @@ type Model struct {
 	horizon      int
 	observeAll   bool
 	maxControls  int
+
+	// Belief tables: row ((s*k+l)*ages + t) is site s's belief t steps after
+	// it was seen at level l; tabQ its chance of threshold level or worse
+	// (summed as Base sums it) and tabEnd whether it is the last age held.
+	ages   int
+	tab    []float64
+	tabQ   []float64
+	tabEnd []bool
 }
+
+// tableBytes bounds the belief tables (common practice: keep a hot table
+// within a core's L2 cache); maxAges caps the ages held, past which a
+// site's belief is propagated step by step as before.
+const (
+	tableBytes = 1 << 20
+	maxAges    = 128
+	minAges    = 8
+)
 
 var (
 	_ model.Enumerable     = (*Model)(nil)
@@ -121,6 +144,7 @@ func build(sp *spec) *Model {
 		sortInts(m.nbr[s])
 		m.maxControls = max(m.maxControls, len(m.nbr[s])+1)
 	}
+	m.buildTables()
 	m.dist = allPairsBFS(m.nbr)
 	m.hop = make([]int, n*n)
 	for a := range n {
@@ -139,6 +163,89 @@ func build(sp *spec) *Model {
 		}
 	}
 	return m
+}
+
+// buildTables fills the belief tables by running wear on each point mass,
+// the very code Advance runs on an explicit belief, so a tabled belief and
+// a propagated one are the same bits. Too many sites or levels for
+// tableBytes leaves the tables off.
+func (m *Model) buildTables() {
+	n, k := m.n, m.k
+	ages := min(maxAges, tableBytes/(8*(k+2)*n*k))
+	if ages < minAges {
+		return
+	}
+	m.ages = ages
+	rows := n * k * ages
+	m.tab = make([]float64, rows*k)
+	m.tabQ = make([]float64, rows)
+	m.tabEnd = make([]bool, rows)
+	var cur, next [MaxLevels + 1]float64
+	for s := range n {
+		for l := range k {
+			clear(cur[:k])
+			cur[l] = 1
+			for t := range ages {
+				i := (s*k+l)*ages + t
+				copy(m.tab[i*k:i*k+k], cur[:k])
+				m.tabQ[i] = m.tailProb(cur[:k])
+				m.tabEnd[i] = t == ages-1
+				m.wear(s, cur[:k], next[:k])
+				cur = next
+			}
+		}
+	}
+}
+
+// wear is one step of site's chain on belief b: out(j) = sum_i b(i) P(i,j)
+// over the band of column j's nonzero rows (a birth chain has two), summed
+// in a register; skipped terms are exact zeros, so this is the full
+// product bit for bit. out must not alias b.
+func (m *Model) wear(site int, b, out []float64) {
+	k := m.k
+	pt := m.chainT[site*k*k : (site+1)*k*k]
+	band := m.band[site*k : site*k+k]
+	for j := range out {
+		col := pt[j*k : j*k+k]
+		acc := 0.0
+		for i := int(band[j][0]); i < int(band[j][1]); i++ {
+			acc += b[i] * col[i]
+		}
+		out[j] = acc
+	}
+}
+
+// tailProb is P(level >= threshold level) under b, summed in level order.
+func (m *Model) tailProb(b []float64) float64 {
+	q := 0.0
+	for _, v := range b[m.threshLevel:] {
+		q += v
+	}
+	return q
+}
+
+// belief is site's probability vector in st, read-only (it may be a table
+// row shared by every state).
+func (m *Model) belief(st *State, site int) []float64 {
+	if i := int(st.ti[site]); i >= 0 {
+		return m.tab[i*m.k : i*m.k+m.k]
+	}
+	return st.bel[site*m.k : site*m.k+m.k]
+}
+
+// rowOf finds the table row holding exactly b for site (the youngest age
+// that does), or -1: a belief that came over the wire rejoins the tables.
+func (m *Model) rowOf(site int, b []float64) int32 {
+	k := m.k
+	for t := range m.ages {
+		for l := range k {
+			i := (site*k+l)*m.ages + t
+			if slices.Equal(m.tab[i*k:i*k+k], b) {
+				return int32(i)
+			}
+		}
+	}
+	return -1
 }
 
 func sortInts(a []int) {
@@ -190,13 +297,22 @@ func (m *Model) NewState() model.State {
 	// rollout workers, each stepping a state of its own, never write the
 	// same line.
 	nb := m.n * m.k
-	return &State{pos: make([]int, m.robots+16)[8 : 8+m.robots : 8+m.robots], bel: make([]float64, nb+16)[8 : 8+nb : 8+nb]}
+	st := &State{
+		pos: make([]int, m.robots+16)[8 : 8+m.robots : 8+m.robots],
+		ti:  make([]int32, m.n+32)[16 : 16+m.n : 16+m.n],
+		bel: make([]float64, nb+16)[8 : 8+nb : 8+nb],
+	}
+	for i := range st.ti {
+		st.ti[i] = -1
+	}
+	return st
 }
 
 // CopyState copies src into dst.
 func (m *Model) CopyState(dst, src model.State) {
 	d, s := dst.(*State), src.(*State)
 	copy(d.pos, s.pos)
+	copy(d.ti, s.ti)
 	copy(d.bel, s.bel)
 }
 
@@ -225,6 +341,11 @@ func (m *Model) Discount() float64 { return m.discount }
 func (m *Model) Horizon() int { return m.horizon }
 
 func (m *Model) point(st *State, site, level int) {
+	if m.ages > 0 {
+		st.ti[site] = int32((site*m.k + level) * m.ages)
+		return
+	}
+	st.ti[site] = -1
 	b := st.bel[site*m.k : (site+1)*m.k]
 	for i := range b {
 		b[i] = 0
@@ -242,28 +363,30 @@ func (m *Model) Advance(s model.State, u []int) float64 {
 			m.point(st, st.pos[r], 0)
 		}
 	}
-	cost, kk := 0.0, k*k
+	cost := 0.0
 	for site := range m.n {
-		b := st.bel[site*k : site*k+k]
 		// The stage cost is taken here, after servicing and before wear;
 		// this is ExpectedCost fused into the wear loop.
+		if i := int(st.ti[site]); i >= 0 {
+			row := m.tab[i*k : i*k+k]
+			for l, q := range row {
+				cost += q * m.cost[l]
+			}
+			if !m.tabEnd[i] {
+				st.ti[site]++ // one step older: the next row
+				continue
+			}
+			// Older than the tables: propagate from here on.
+			st.ti[site] = -1
+			m.wear(site, row, st.bel[site*k:site*k+k])
+			continue
+		}
+		b := st.bel[site*k : site*k+k]
 		for l, q := range b {
 			cost += q * m.cost[l]
 		}
-		pt := m.chainT[site*kk : site*kk+kk]
-		band := m.band[site*k : site*k+k]
 		var tmp [MaxLevels + 1]float64
-		// b'(j) = sum_i b(i) P(i,j) over the band of column j's nonzero
-		// rows (a birth chain has two), summed in a register: skipped
-		// terms are exact zeros, so this is the full product bit for bit.
-		for j := range b {
-			col := pt[j*k : j*k+k]
-			acc := 0.0
-			for i := int(band[j][0]); i < int(band[j][1]); i++ {
-				acc += b[i] * col[i]
-			}
-			tmp[j] = acc
-		}
+		m.wear(site, b, tmp[:k])
 		for j := range b {
 			b[j] = tmp[j] // a loop, not copy: no memmove call for 4 words
 		}
@@ -281,12 +404,18 @@ func (m *Model) Advance(s model.State, u []int) float64 {
 func (m *Model) Step(s model.State, u []int, rng *rand.Rand) float64 {
 	st := s.(*State)
 	cost := m.Advance(st, u)
+	// A site no robot's bit is set for is surely unobserved: most sites,
+	// found without scanning the robots.
+	var near uint64
+	for _, p := range st.pos {
+		near |= 1 << (p & 63)
+	}
 	for site := range m.n {
 		x := rng.Float64()
-		if !m.observed(st, site) {
+		if !m.observeAll && (near&(1<<(site&63)) == 0 || !m.observed(st, site)) {
 			continue
 		}
-		m.point(st, site, m.sample(st.bel[site*m.k:(site+1)*m.k], x))
+		m.point(st, site, m.sample(m.belief(st, site), x))
 	}
 	return cost
 }
@@ -334,12 +463,20 @@ func (m *Model) Observe(s model.State, site, level int) {
 	m.point(s.(*State), site, level)
 }
 
+// SetBelief sets site's belief in s to a copy of b (L+1 probabilities; not
+// checked: for tests and tools that build states by hand).
+func (m *Model) SetBelief(s model.State, site int, b []float64) {
+	st := s.(*State)
+	st.ti[site] = -1
+	copy(st.bel[site*m.k:(site+1)*m.k], b)
+}
+
 // ExpectedCost is sum_s sum_l b_s(l)*cost[l] in s as it stands.
 func (m *Model) ExpectedCost(s model.State) float64 {
 	st := s.(*State)
-	total, k := 0.0, m.k
-	for i := 0; i+k <= len(st.bel); i += k {
-		for l, q := range st.bel[i : i+k] {
+	total := 0.0
+	for site := range m.n {
+		for l, q := range m.belief(st, site) {
 			total += q * m.cost[l]
 		}
 	}
@@ -349,16 +486,18 @@ func (m *Model) ExpectedCost(s model.State) float64 {
 // Base is the base policy; see the package comment.
 func (m *Model) Base(s model.State, r int) int {
 	st := s.(*State)
-	n, k, at := m.n, m.k, st.pos[r]
-	if st.bel[at*k] == 0 {
+	n, at := m.n, st.pos[r]
+	if m.belief(st, at)[0] == 0 {
 		return 0
 	}
 	best, bestD, bestP := -1, 0, 0.0
 	d := m.dist[at*n : (at+1)*n]
 	for site := range n {
-		q := 0.0
-		for _, v := range st.bel[site*k+m.threshLevel : (site+1)*k] {
-			q += v
+		var q float64
+		if i := st.ti[site]; i >= 0 {
+			q = m.tabQ[i]
+		} else {
+			q = m.tailProb(st.bel[site*m.k : site*m.k+m.k])
 		}
 		if q <= m.threshProb {
 			continue
@@ -401,11 +540,13 @@ func (m *Model) Key(s model.State) string {
 	for _, p := range st.pos {
 		buf = binary.LittleEndian.AppendUint16(buf, uint16(p))
 	}
-	for _, q := range st.bel {
-		if q == 0 {
-			q = 0 // fold -0 into +0
+	for site := range m.n {
+		for _, q := range m.belief(st, site) {
+			if q == 0 {
+				q = 0 // fold -0 into +0
+			}
+			buf = binary.LittleEndian.AppendUint64(buf, math.Float64bits(q))
 		}
-		buf = binary.LittleEndian.AppendUint64(buf, math.Float64bits(q))
 	}
 	return string(buf)
 }
@@ -434,7 +575,7 @@ func (m *Model) Outcomes(s model.State, u []int, fn func(next model.State, p, co
 			return
 		}
 		site := obs[i]
-		for l, q := range pre.bel[site*m.k : (site+1)*m.k] {
+		for l, q := range m.belief(pre, site) {
 			if q > 0 {
 				m.point(next, site, l)
 				rec(i+1, p*q)
@@ -490,10 +631,10 @@ func (m *Model) Position(s model.State, r int) int32 { return int32(s.(*State).p
 // Positions is the robots' sites in s; it aliases s, do not modify it.
 func (m *Model) Positions(s model.State) []int { return s.(*State).pos }
 
-// Belief is site's probability vector over levels 0..L in s; it aliases s,
-// do not modify it.
+// Belief is site's probability vector over levels 0..L in s. It is
+// read-only: it aliases s or a table every state shares (SetBelief writes).
 func (m *Model) Belief(s model.State, site int) []float64 {
-	return s.(*State).bel[site*m.k : (site+1)*m.k]
+	return m.belief(s.(*State), site)
 }
 
 // WithStarts is m with robot r starting at site starts[r] (by name), one

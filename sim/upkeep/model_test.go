@@ -4,6 +4,7 @@ import (
 	"math"
 	"math/rand/v2"
 	"reflect"
+	"slices"
 	"testing"
 
 	"baton/sim/model"
@@ -267,7 +268,7 @@ func TestBasePolicy(t *testing.T) {
 	for _, tc := range cases {
 		s := start(m)
 		for site, v := range tc.bel {
-			copy(m.Belief(s, site), v)
+			m.SetBelief(s, site, v)
 		}
 		for r := range m.Robots() {
 			s.pos[r] = tc.at
@@ -282,7 +283,7 @@ func TestBasePolicy(t *testing.T) {
 	// P(level >= T) sums every level from T up.
 	m3 := baseGraph(t, "levels: 3\nlevel_cost: [0, 1, 5, 9]", 1)
 	s := start(m3)
-	copy(m3.Belief(s, c), []float64{0.4, 0.2, 0.2, 0.2}) // 0.4 > 0.3, though no single level is
+	m3.SetBelief(s, c, []float64{0.4, 0.2, 0.2, 0.2}) // 0.4 > 0.3, though no single level is
 	if got := m3.Base(s, 0); got != 2 {
 		t.Errorf("summed tail: control %d, want 2 (to c)", got)
 	}
@@ -290,15 +291,15 @@ func TestBasePolicy(t *testing.T) {
 	// Robots on different sites choose their own nearest target; the two
 	// co-located ones herd to the same one.
 	s = start(m)
-	copy(m.Belief(s, b), []float64{0.5, 0, 0.5})
-	copy(m.Belief(s, e), []float64{0.5, 0, 0.5})
+	m.SetBelief(s, b, []float64{0.5, 0, 0.5})
+	m.SetBelief(s, e, []float64{0.5, 0, 0.5})
 	s.pos[0], s.pos[1], s.pos[2] = a, a, d
 	if got := []int{m.Base(s, 0), m.Base(s, 1), m.Base(s, 2)}; !reflect.DeepEqual(got, []int{1, 1, 1}) {
 		// a -> b is control 1; d's targets b and e tie at 1 hop and 0.5, so
 		// b (lower index) is control 1 as well.
 		t.Errorf("controls %v, want [1 1 1]", got)
 	}
-	copy(m.Belief(s, e), []float64{0.4, 0, 0.6})
+	m.SetBelief(s, e, []float64{0.4, 0, 0.6})
 	if got := m.Base(s, 2); got != 3 {
 		t.Errorf("robot at d: control %d, want 3 (to e, more likely)", got)
 	}
@@ -444,4 +445,102 @@ func TestKey(t *testing.T) {
 	if m.Key(s1) == m.Key(s2) {
 		t.Error("different beliefs, same key")
 	}
+}
+
+// The belief tables change no bit: the demo park stepped 400 times (past
+// the tables' last age, so sites fall back to propagation too) gives the
+// same costs and the same flattened states as the same model without
+// tables, and a snapshot taken midway rejoins the tables on Unflatten and
+// then steps the same.
+func TestTablesChangeNoBit(t *testing.T) {
+	m, err := Default(4)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if m.ages == 0 {
+		t.Fatal("the demo park has no belief tables")
+	}
+	plain := *m
+	plain.ages, plain.tab, plain.tabQ, plain.tabEnd = 0, nil, nil, nil
+	s, p := m.NewState(), plain.NewState()
+	m.Start(s, nil)
+	plain.Start(p, nil)
+	r1, r2 := model.NewRNG(9), model.NewRNG(9)
+	u := make([]int, m.Robots())
+	tabled, fallen := 0, 0
+	for step := range 400 {
+		for r := range u {
+			// Mostly the base policy, now and then a seeded other control.
+			u[r] = m.Base(s, r)
+			if step%7 == r {
+				u[r] = step % m.NumControls(s, r)
+			}
+		}
+		c1, c2 := m.Step(s, u, r1.Rand), plain.Step(p, u, r2.Rand)
+		if math.Float64bits(c1) != math.Float64bits(c2) {
+			t.Fatalf("step %d: cost %v with tables, %v without", step, c1, c2)
+		}
+		i1, f1 := m.Flatten(s, nil, nil)
+		i2, f2 := plain.Flatten(p, nil, nil)
+		if !slices.Equal(i1, i2) || !bitsEqual(f1, f2) {
+			t.Fatalf("step %d: states differ", step)
+		}
+		for r := range u {
+			if m.Base(s, r) != plain.Base(p, r) {
+				t.Fatalf("step %d: robot %d's base control differs", step, r)
+			}
+		}
+		for _, ti := range s.(*State).ti {
+			if ti >= 0 {
+				tabled++
+			} else {
+				fallen++
+			}
+		}
+		if step == 60 {
+			// The snapshot rejoins the tables and then steps as the
+			// table-less model does from the same state.
+			re := m.NewState().(*State)
+			if err := m.Unflatten(re, i1, f1); err != nil {
+				t.Fatal(err)
+			}
+			if !slices.ContainsFunc(re.ti, func(i int32) bool { return i >= 0 }) {
+				t.Fatal("a snapshot did not rejoin the tables")
+			}
+			q := plain.NewState()
+			plain.CopyState(q, p)
+			ra, rb := model.NewRNG(77), model.NewRNG(77)
+			for range 150 {
+				model.BaseJoint(m, re, u)
+				ca, cb := m.Step(re, u, ra.Rand), plain.Step(q, u, rb.Rand)
+				ia, fa := m.Flatten(re, nil, nil)
+				ib, fb := plain.Flatten(q, nil, nil)
+				if math.Float64bits(ca) != math.Float64bits(cb) || !slices.Equal(ia, ib) || !bitsEqual(fa, fb) {
+					t.Fatal("a state rebuilt from its snapshot steps differently")
+				}
+			}
+		}
+	}
+	// Base reads a tabled site's tail probability from tabQ: it must be the
+	// sum Base would make of the row.
+	for i := range m.tabQ {
+		if q := m.tailProb(m.tab[i*m.k : i*m.k+m.k]); math.Float64bits(q) != math.Float64bits(m.tabQ[i]) {
+			t.Fatalf("row %d: tabled tail %v, summed %v", i, m.tabQ[i], q)
+		}
+	}
+	if tabled == 0 || fallen == 0 {
+		t.Fatalf("%d tabled and %d propagated site-steps: want both paths used", tabled, fallen)
+	}
+}
+
+func bitsEqual(a, b []float64) bool {
+	if len(a) != len(b) {
+		return false
+	}
+	for i := range a {
+		if math.Float64bits(a[i]) != math.Float64bits(b[i]) {
+			return false
+		}
+	}
+	return true
 }

@@ -13,7 +13,7 @@ func (m *Model) DrawTruth(s model.State, rng *rand.Rand) []int32 {
 	st := s.(*State)
 	out := make([]int32, m.n)
 	for site := range m.n {
-		out[site] = int32(m.sample(st.bel[site*m.k:(site+1)*m.k], rng.Float64()))
+		out[site] = int32(m.sample(m.belief(st, site), rng.Float64()))
 	}
 	return out
 }
@@ -55,7 +55,7 @@ func (m *Model) TrueSense(truth []int32, s model.State, r int, dst []model.Sight
 // PointLevel is site's level when the belief in s is certain of it.
 func (m *Model) PointLevel(s model.State, site int) (int, bool) {
 	st := s.(*State)
-	return pointLevel(st.bel[site*m.k : (site+1)*m.k])
+	return pointLevel(m.belief(st, site))
 }
 
 // Toward is the control that moves a robot at site a one road toward site
@@ -66,17 +66,12 @@ func (m *Model) Toward(a, b int) int { return m.hop[a*m.n+b] }
 // sees it: the chance it is at or past the threshold level exceeds the
 // threshold probability.
 func (m *Model) Due(s model.State, site int) bool {
-	st := s.(*State)
-	q := 0.0
-	for _, v := range st.bel[site*m.k+m.threshLevel : (site+1)*m.k] {
-		q += v
-	}
-	return q > m.threshProb
+	return m.tailProb(m.belief(s.(*State), site)) > m.threshProb
 }
 
 // SurelyWorn reports whether robot r's site is surely not at level 0 in s
 // (the base policy services it then).
 func (m *Model) SurelyWorn(s model.State, r int) bool {
 	st := s.(*State)
-	return st.bel[st.pos[r]*m.k] == 0
+	return m.belief(st, st.pos[r])[0] == 0
 }
