@@ -84,6 +84,9 @@ type Decider struct {
 	cands   [][]int   // reusable joint-control buffers
 	est     []Estimate
 	joint   []int
+	jb      model.JointBaser // m's, asserted once rather than every step
+	seeds   []uint64         // Mix(seed, sample, t) at [sample*stride+t]
+	stride  int
 }
 
 // worker is one goroutine's scratch, a cache line of padding on each side
@@ -104,6 +107,7 @@ func New(m model.Model, cfg Config) *Decider {
 	if cfg.TerminalCost {
 		d.term, _ = m.(model.TerminalCoster)
 	}
+	d.jb, _ = m.(model.JointBaser)
 	for range cfg.Workers {
 		r := m.Robots()
 		d.workers = append(d.workers, &worker{s: m.NewState(), u: make([]int, r+16)[8 : 8+r : 8+r], rng: model.NewRNG(0)})
@@ -118,7 +122,8 @@ func (d *Decider) Config() Config { return d.cfg }
 func (d *Decider) simulate(w *worker, x model.State, u []int, seed uint64, sample int) float64 {
 	m := d.m
 	m.CopyState(w.s, x)
-	w.rng.Reseed(model.Mix(seed, uint64(sample), 0))
+	seeds := d.seeds[sample*d.stride : (sample+1)*d.stride]
+	w.rng.Reseed(d.seedAt(seeds, seed, sample, 0))
 	cost := m.Step(w.s, u, w.rng.Rand)
 	steps := int64(1)
 	defer func() { w.sim += steps }()
@@ -129,8 +134,8 @@ func (d *Decider) simulate(w *worker, x model.State, u []int, seed uint64, sampl
 			return cost
 		}
 		disc *= a
-		model.BaseJoint(m, w.s, w.u)
-		w.rng.Reseed(model.Mix(seed, uint64(sample), uint64(t)))
+		d.baseJoint(w.s, w.u)
+		w.rng.Reseed(d.seedAt(seeds, seed, sample, t))
 		cost += disc * m.Step(w.s, w.u, w.rng.Rand)
 		steps++
 	}
@@ -140,9 +145,55 @@ func (d *Decider) simulate(w *worker, x model.State, u []int, seed uint64, sampl
 	return cost
 }
 
+// seedTable bounds the per-decision table of step seeds (512 kB); past it
+// seeds are mixed where they are used.
+const seedTable = 1 << 16
+
+// seedAt is Mix(seed, sample, t), from the decision's table when it has one:
+// every candidate draws the same disturbances, so their seeds are mixed once
+// per decision rather than once per candidate.
+func (d *Decider) seedAt(seeds []uint64, seed uint64, sample, t int) uint64 {
+	if len(seeds) > 0 {
+		return seeds[t]
+	}
+	return model.Mix(seed, uint64(sample), uint64(t))
+}
+
+// fillSeeds tables Mix(seed, s, t) for every sample and step, or leaves the
+// table empty when it would pass seedTable.
+func (d *Decider) fillSeeds(seed uint64) {
+	S, H := d.cfg.Samples, d.cfg.Horizon
+	if S*(H+1) > seedTable {
+		d.seeds, d.stride = d.seeds[:0], 0
+		return
+	}
+	d.stride = H + 1
+	if cap(d.seeds) < S*(H+1) {
+		d.seeds = make([]uint64, S*(H+1))
+	}
+	d.seeds = d.seeds[:S*(H+1)]
+	for s := range S {
+		for t := 0; t <= H; t++ {
+			d.seeds[s*(H+1)+t] = model.Mix(seed, uint64(s), uint64(t))
+		}
+	}
+}
+
+// baseJoint is model.BaseJoint without its per-call interface assertion.
+func (d *Decider) baseJoint(s model.State, u []int) {
+	if d.jb != nil {
+		d.jb.BaseAll(s, u)
+		return
+	}
+	for r := range u {
+		u[r] = d.m.Base(s, r)
+	}
+}
+
 // evaluate fills d.est for the joint controls in cands.
 func (d *Decider) evaluate(x model.State, cands [][]int, seed uint64) Stats {
 	n, S := len(cands), d.cfg.Samples
+	d.fillSeeds(seed)
 	tasks := n * S
 	if cap(d.sums) < tasks {
 		d.sums = make([]float64, tasks)

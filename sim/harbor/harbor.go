@@ -30,6 +30,7 @@ package harbor
 
 import (
 	"fmt"
+	"math"
 	"math/rand/v2"
 	"slices"
 	"strings"
@@ -59,13 +60,14 @@ var dy = [numControls]int{0, 1, -1, 0, 0}
 type Model struct {
 	cfg  Config
 	w, h int
-	// xs, ys are each cell's coordinates (grids up to tableCells), and
-	// step[u] the cell offset of control u: the hot paths (Base, moves,
-	// distances) then divide nothing.
-	xs, ys  []int16
+	// xy holds each cell's coordinates, x | y<<16, one load for both
+	// (grids up to tableCells), and step[u] the cell offset of control u:
+	// the hot paths (Base, moves, distances) then divide nothing.
+	xy      []uint32
 	step    [numControls]int32
 	drift   float64
 	cumDir  [4]float64 // cumulative direction weights N,S,E,W, normalised to 1
+	dirCut  [4]float64 // divCut(drift, cumDir[i]): r < dirCut[i] iff r/drift < cumDir[i]
 	current int        // index into N,S,E,W of the current, or -1
 }
 
@@ -91,9 +93,9 @@ func New(cfg Config) (*Model, error) {
 func newModel(cfg Config) *Model {
 	m := &Model{cfg: cfg, w: cfg.Width, h: cfg.Height, drift: cfg.Drift, current: -1}
 	if m.w*m.h <= tableCells {
-		m.xs, m.ys = make([]int16, m.w*m.h), make([]int16, m.w*m.h)
-		for c := range m.xs {
-			m.xs[c], m.ys[c] = int16(c%m.w), int16(c/m.w)
+		m.xy = make([]uint32, m.w*m.h)
+		for c := range m.xy {
+			m.xy[c] = uint32(c%m.w) | uint32(c/m.w)<<16
 		}
 	}
 	for u := range m.step {
@@ -111,7 +113,30 @@ func newModel(cfg Config) *Model {
 		m.cumDir[i] = acc
 	}
 	m.cumDir[3] = 1
+	if m.drift > 0 {
+		for i, c := range m.cumDir {
+			m.dirCut[i] = divCut(m.drift, c)
+		}
+	}
 	return m
+}
+
+// divCut is the least r >= 0 with r/d >= c in floating point (or the float
+// after d when no r <= d has it). Division is monotone, so r/d < c exactly
+// when r < divCut(d, c): Step picks a drift direction with the same
+// outcome as dividing, without the division. Found by bisection over the
+// float64 bit patterns, which order non-negative floats.
+func divCut(d, c float64) float64 {
+	lo, hi := uint64(0), math.Float64bits(d)+1
+	for lo < hi {
+		mid := lo + (hi-lo)/2
+		if math.Float64frombits(mid)/d >= c {
+			hi = mid
+		} else {
+			lo = mid + 1
+		}
+	}
+	return math.Float64frombits(lo)
 }
 
 // Config returns the configuration the model was built from.
@@ -130,8 +155,9 @@ func (m *Model) Cell(x, y int) int32 { return int32(y*m.w + x) }
 
 // XY is the inverse of Cell.
 func (m *Model) XY(c int32) (x, y int) {
-	if m.xs != nil {
-		return int(m.xs[c]), int(m.ys[c])
+	if m.xy != nil {
+		v := m.xy[c]
+		return int(v & 0xffff), int(v >> 16)
 	}
 	return int(c) % m.w, int(c) / m.w
 }
@@ -249,9 +275,20 @@ func (m *Model) Step(st model.State, u []int, rng *rand.Rand) float64 {
 		if c < 0 || r >= m.drift {
 			continue
 		}
-		s.Slicks[i] = m.move(c, m.direction(r/m.drift))
+		s.Slicks[i] = m.move(c, m.driftDirection(r))
 	}
 	return cost
+}
+
+// driftDirection is direction(r/drift) for a uniform r < drift, by the
+// precomputed cuts.
+func (m *Model) driftDirection(r float64) int {
+	for i, c := range m.dirCut {
+		if r < c {
+			return North + i
+		}
+	}
+	return West
 }
 
 // direction maps a uniform in [0,1) to N, S, E or W by the current's weights.
@@ -284,20 +321,75 @@ func (m *Model) Base(st model.State, r int) int {
 	s := st.(*State)
 	b := s.Boats[r]
 	bx, by := m.XY(b)
-	best, bestD := int32(-1), 1<<30
+	best := noSlick
 	for _, c := range s.Slicks {
 		if c < 0 {
 			continue
 		}
 		cx, cy := m.XY(c)
-		if d := abs(cx-bx) + abs(cy-by); d < bestD || (d == bestD && c < best) {
-			best, bestD = c, d
-		}
+		best = min(best, nearKey(iabs(cx-bx)+iabs(cy-by), c))
 	}
-	if best < 0 {
+	if best == noSlick {
 		return Hold
 	}
-	return m.Toward(b, best)
+	return m.Toward(b, int32(best&keyCell))
+}
+
+// jointBoats bounds the fleets BaseAll serves in one pass (its scratch is
+// on the stack, and zeroing a larger one costs more than it saves); larger
+// fleets take Base robot by robot, the same controls.
+const jointBoats = 8
+
+var _ model.JointBaser = (*Model)(nil)
+
+// BaseAll is Base for every boat in one pass over the slicks: each live
+// slick's coordinates are looked up once rather than once per boat.
+func (m *Model) BaseAll(st model.State, u []int) {
+	s := st.(*State)
+	nb := len(s.Boats)
+	if nb == 0 || nb > jointBoats {
+		for r := range u {
+			u[r] = m.Base(st, r)
+		}
+		return
+	}
+	var bx, by, best [jointBoats]int
+	for r, b := range s.Boats {
+		bx[r], by[r] = m.XY(b)
+		best[r] = noSlick
+	}
+	_, _ = bx[nb-1], by[nb-1] // one bounds check, not one per slick
+	for _, c := range s.Slicks {
+		if c < 0 {
+			continue
+		}
+		cx, cy := m.XY(c)
+		for r := range nb {
+			best[r] = min(best[r], nearKey(iabs(cx-bx[r])+iabs(cy-by[r]), c))
+		}
+	}
+	for r := range u {
+		u[r] = Hold
+		if best[r] != noSlick {
+			tx, ty := m.XY(int32(best[r] & keyCell))
+			u[r] = toward(bx[r], by[r], tx, ty)
+		}
+	}
+}
+
+// nearKey orders slicks as Base's rule does, nearer first and then the
+// lower cell, in one integer, so the nearest is a branch-free min.
+func nearKey(d int, c int32) int { return d<<32 | int(c) }
+
+const (
+	keyCell = 1<<32 - 1
+	noSlick = 1<<62 - 1
+)
+
+// iabs is |v| without a branch (the sign is unpredictable in these loops).
+func iabs(v int) int {
+	s := v >> 63
+	return (v ^ s) - s
 }
 
 // Distance is the grid (Manhattan) distance between cells a and b.
@@ -309,6 +401,10 @@ func (m *Model) Distance(a, b int32) int { return m.dist(a, b) }
 func (m *Model) Toward(from, to int32) int {
 	bx, by := m.XY(from)
 	tx, ty := m.XY(to)
+	return toward(bx, by, tx, ty)
+}
+
+func toward(bx, by, tx, ty int) int {
 	switch {
 	case tx > bx:
 		return East

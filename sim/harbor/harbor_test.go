@@ -220,3 +220,66 @@ func TestStartWhenBoatsCoverTheGrid(t *testing.T) {
 		sc.Start(s, model.NewRNG(seed).Rand)
 	}
 }
+
+// BaseAll, one pass over the slicks for the whole fleet, gives every boat
+// Base's control: seeded scattered harbors of 1..70 boats (past the
+// one-pass bound too), stepped along with random controls.
+func TestBaseAllIsBase(t *testing.T) {
+	for seed := uint64(1); seed <= 40; seed++ {
+		cfg := Defaults()
+		cfg.Robots = 1 + int(seed*7%70)
+		cfg.Scatter = true
+		m, err := New(cfg)
+		if err != nil {
+			t.Fatal(err)
+		}
+		rng := model.NewRNG(seed)
+		s := m.NewState()
+		m.Start(s, rng.Rand)
+		u := make([]int, m.Robots())
+		for step := 0; step < 30 && !m.Terminal(s); step++ {
+			m.BaseAll(s, u)
+			for r := range u {
+				if want := m.Base(s, r); u[r] != want {
+					t.Fatalf("seed %d step %d boat %d: BaseAll %d, Base %d", seed, step, r, u[r], want)
+				}
+				u[r] = rng.IntN(numControls)
+			}
+			m.Step(s, u, rng.Rand)
+		}
+	}
+}
+
+// The drift direction by precomputed cuts is the direction by division,
+// for every uniform: checked on both sides of every cut (where a rounding
+// difference would show) and on a million seeded uniforms, for drifts and
+// currents of several kinds.
+func TestDriftCutsAreDivision(t *testing.T) {
+	rng := model.NewRNG(3)
+	for _, d := range []float64{0.3, 1, 0.1, 1.0 / 3, 0.7, 1e-9, 0.999999} {
+		for _, cur := range []string{"", "N", "S", "E", "W"} {
+			cfg := Defaults()
+			cfg.Drift, cfg.Current = d, cur
+			m, err := New(cfg)
+			if err != nil {
+				t.Fatal(err)
+			}
+			check := func(r float64) {
+				if r < 0 || r >= d {
+					return
+				}
+				if got, want := m.driftDirection(r), m.direction(r/d); got != want {
+					t.Fatalf("drift %v current %q r %v: cuts give %d, division %d", d, cur, r, got, want)
+				}
+			}
+			for _, c := range m.dirCut {
+				for _, r := range []float64{c, math.Nextafter(c, 0), math.Nextafter(c, 2)} {
+					check(r)
+				}
+			}
+			for range 1_000_000 / 35 {
+				check(rng.Float64() * d)
+			}
+		}
+	}
+}
