@@ -55,12 +55,14 @@ func (c Config) withDefaults() Config {
 
 // Stats counts the work of one decision.
 type Stats struct {
-	QFactors  int   // Q-factors evaluated
+	QFactors  int   // Q-factors estimated
+	Shared    int   // of them, given by a control acting alike (model.Aliaser), not simulated
 	Simulated int64 // simulated steps (each advances all robots)
 }
 
 func (s *Stats) add(o Stats) {
 	s.QFactors += o.QFactors
+	s.Shared += o.Shared
 	s.Simulated += o.Simulated
 }
 
@@ -85,7 +87,10 @@ type Decider struct {
 	est     []Estimate
 	joint   []int
 	jb      model.JointBaser // m's, asserted once rather than every step
-	seeds   []uint64         // Mix(seed, sample, t) at [sample*stride+t]
+	al      model.Aliaser
+	slot    []int      // Turn: the candidate standing for each control
+	full    []Estimate // Turn: per control, when some share a candidate
+	seeds   []uint64   // Mix(seed, sample, t) at [sample*stride+t]
 	stride  int
 }
 
@@ -108,6 +113,7 @@ func New(m model.Model, cfg Config) *Decider {
 		d.term, _ = m.(model.TerminalCoster)
 	}
 	d.jb, _ = m.(model.JointBaser)
+	d.al, _ = m.(model.Aliaser)
 	for range cfg.Workers {
 		r := m.Robots()
 		d.workers = append(d.workers, &worker{s: m.NewState(), u: make([]int, r+16)[8 : 8+r : 8+r], rng: model.NewRNG(0)})
@@ -278,14 +284,40 @@ func (d *Decider) Turn(x model.State, r int, known []int, seed uint64) (int, Sta
 		}
 	}
 	base := d.joint[r]
+	// Controls that act alike (model.Aliaser) share one simulation; slot[c]
+	// is the candidate that stands for control c.
+	if cap(d.slot) < n {
+		d.slot = make([]int, n)
+	}
+	slot := d.slot[:n]
 	d.cands = d.cands[:0]
+	k := 0
 	for c := range n {
-		u := d.candidate(c)
+		if d.al != nil {
+			if a := d.al.Alias(x, r, c); a != c {
+				slot[c] = slot[a]
+				continue
+			}
+		}
+		u := d.candidate(k)
 		copy(u, d.joint)
 		u[r] = c
+		slot[c] = k
+		k++
 	}
-	d.cands = d.cands[:n]
+	d.cands = d.cands[:k]
 	st := d.evaluate(x, d.cands, seed)
+	if k < n {
+		st.QFactors, st.Shared = n, n-k
+		if cap(d.full) < n {
+			d.full = make([]Estimate, n)
+		}
+		full := d.full[:n]
+		for c := range n {
+			full[c] = d.est[slot[c]]
+		}
+		return argmin(full, base), st
+	}
 	return argmin(d.est, base), st
 }
 

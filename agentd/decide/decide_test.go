@@ -1,6 +1,7 @@
 package decide
 
 import (
+	"slices"
 	"testing"
 
 	"baton/sim/harbor"
@@ -37,6 +38,33 @@ func TestQFactorCounts(t *testing.T) {
 		t.Errorf("one-at-a-time evaluated %d Q-factors, want 20", st.QFactors)
 	}
 }
+
+// Controls that act alike share a simulation and give exactly the estimates
+// and decisions simulating each would: boats at the corner dock, whose
+// south and west moves are holds, decide as a model without aliases does.
+func TestAliasesShareExactly(t *testing.T) {
+	m, x := harborStart(t, 4)
+	cfg := Config{Workers: 1, Samples: 8, Horizon: 10}
+	a, b := New(m, cfg), New(noAlias{m}, cfg)
+	known := []int{-1, -1, -1, -1}
+	for r := range 4 {
+		for seed := uint64(1); seed <= 20; seed++ {
+			ca, sa := a.Turn(x, r, known, seed)
+			ea := slices.Clone(a.full[:m.NumControls(x, r)])
+			cb, sb := b.Turn(x, r, known, seed)
+			if ca != cb || !slices.Equal(ea, b.est) {
+				t.Fatalf("robot %d seed %d: control %d estimates %v shared, %d %v simulated", r, seed, ca, ea, cb, b.est)
+			}
+			if sa.Shared != 2 || sb.Shared != 0 || sa.QFactors != sb.QFactors || sa.Simulated >= sb.Simulated {
+				t.Fatalf("robot %d: stats %+v shared, %+v simulated", r, sa, sb)
+			}
+		}
+	}
+}
+
+// noAlias hides the model's Aliaser (and its JointBaser: an embedded
+// interface carries only Model's methods).
+type noAlias struct{ model.Model }
 
 // Decisions depend on the seed only, not on the number of goroutines.
 func TestDeterministicAcrossWorkers(t *testing.T) {
@@ -151,4 +179,24 @@ func BenchmarkTurnUpkeep(b *testing.B) {
 	x := m.NewState()
 	m.Start(x, nil)
 	benchTurn(b, m, x)
+}
+
+// A whole one-at-a-time decision for a fleet of 32 boats (every robot's
+// turn, in order) with the default effort on two workers: the time a
+// round's rollout takes when one machine decides for all.
+func BenchmarkDecision32Harbor(b *testing.B) {
+	m, x := harborStart(b, 32)
+	cfg := DefaultConfig()
+	cfg.Workers = 2
+	d := New(m, cfg)
+	out := make([]int, m.Robots())
+	d.OneAtATime(x, nil, 1, 1, out)
+	b.ReportAllocs()
+	var sim int64
+	for b.Loop() {
+		st := d.OneAtATime(x, nil, 1, 1, out)
+		sim += st.Simulated
+	}
+	b.ReportMetric(float64(b.Elapsed().Microseconds())/1000/float64(b.N), "ms/decision")
+	b.ReportMetric(float64(sim*int64(m.Robots()))/b.Elapsed().Seconds(), "robot-steps/s")
 }

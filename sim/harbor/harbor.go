@@ -335,6 +335,17 @@ func (m *Model) Base(st model.State, r int) int {
 	return m.Toward(b, int32(best&keyCell))
 }
 
+var _ model.Aliaser = (*Model)(nil)
+
+// Alias is Hold for a move off the grid (move leaves the boat where it is)
+// and c otherwise: no two moves that go somewhere reach the same cell.
+func (m *Model) Alias(st model.State, r, c int) int {
+	if b := st.(*State).Boats[r]; c != Hold && m.move(b, c) == b {
+		return Hold
+	}
+	return c
+}
+
 // jointBoats bounds the fleets BaseAll serves in one pass (its scratch is
 // on the stack, and zeroing a larger one costs more than it saves); larger
 // fleets take Base robot by robot, the same controls.
@@ -347,10 +358,11 @@ var _ model.JointBaser = (*Model)(nil)
 func (m *Model) BaseAll(st model.State, u []int) {
 	s := st.(*State)
 	nb := len(s.Boats)
-	if nb == 0 || nb > jointBoats {
-		for r := range u {
-			u[r] = m.Base(st, r)
-		}
+	if nb == 0 {
+		return
+	}
+	if nb > jointBoats {
+		m.baseMany(s, u)
 		return
 	}
 	var bx, by, best [jointBoats]int
@@ -373,6 +385,48 @@ func (m *Model) BaseAll(st model.State, u []int) {
 		if best[r] != noSlick {
 			tx, ty := m.XY(int32(best[r] & keyCell))
 			u[r] = toward(bx[r], by[r], tx, ty)
+		}
+	}
+}
+
+// liveSlicks bounds the live slicks baseMany gathers on the stack.
+const liveSlicks = 16
+
+// baseMany is BaseAll for a larger fleet: the live slicks' coordinates
+// gathered once, then boat by boat, a boat on the same cell as the one
+// before it taking its control (fleets leave a dock together).
+func (m *Model) baseMany(s *State, u []int) {
+	var sx, sy [liveSlicks]int
+	var sc [liveSlicks]int32
+	n := 0
+	for _, c := range s.Slicks {
+		if c < 0 {
+			continue
+		}
+		if n == liveSlicks {
+			for r := range u {
+				u[r] = m.Base(s, r)
+			}
+			return
+		}
+		sx[n], sy[n] = m.XY(c)
+		sc[n] = c
+		n++
+	}
+	for r, b := range s.Boats {
+		if r > 0 && b == s.Boats[r-1] {
+			u[r] = u[r-1]
+			continue
+		}
+		bx, by := m.XY(b)
+		best := noSlick
+		for i := range n {
+			best = min(best, nearKey(iabs(sx[i]-bx)+iabs(sy[i]-by), sc[i]))
+		}
+		u[r] = Hold
+		if best != noSlick {
+			tx, ty := m.XY(int32(best & keyCell))
+			u[r] = toward(bx, by, tx, ty)
 		}
 	}
 }

@@ -83,6 +83,16 @@ type JointBaser interface {
 	BaseAll(s State, u []int)
 }
 
+// Aliaser is implemented by models where distinct controls can act alike:
+// Alias(s, r, c) is the lowest control of robot r in s whose effect equals
+// c's, so that for every disturbance the next state and stage cost are the
+// same (a move blocked by the map's edge is a hold). Rollout then simulates
+// one of them and gives the others its estimate: exact under common random
+// numbers. Alias(s, r, c) <= c, and c itself when nothing lower acts alike.
+type Aliaser interface {
+	Alias(s State, r, c int) int
+}
+
 // BaseJoint fills u with the base policy's controls for every robot in s.
 func BaseJoint(m Model, s State, u []int) {
 	if jb, ok := m.(JointBaser); ok {
