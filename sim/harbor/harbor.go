@@ -252,8 +252,14 @@ func (m *Model) move(c int32, u int) int32 {
 }
 
 func (m *Model) collect(s *State) {
+	// A slick whose cell's bit no boat sets has no boat on it: most, found
+	// without scanning the fleet.
+	var near uint64
+	for _, b := range s.Boats {
+		near |= 1 << (b & 63)
+	}
 	for i, c := range s.Slicks {
-		if c >= 0 && slices.Contains(s.Boats, c) {
+		if c >= 0 && near&(1<<(c&63)) != 0 && slices.Contains(s.Boats, c) {
 			s.Slicks[i] = -1
 			s.Left--
 		}
