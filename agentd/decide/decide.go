@@ -216,19 +216,25 @@ func (d *Decider) evaluate(x model.State, cands [][]int, seed uint64) Stats {
 	} else {
 		var next atomic.Int64
 		var wg sync.WaitGroup
-		for _, w := range d.workers {
+		work := func(w *worker) {
+			for {
+				i := int(next.Add(1) - 1)
+				if i >= tasks {
+					return
+				}
+				d.sums[i] = d.simulate(w, x, cands[i/S], seed, i%S)
+			}
+		}
+		for _, w := range d.workers[1:] {
 			wg.Add(1)
 			go func() {
 				defer wg.Done()
-				for {
-					i := int(next.Add(1) - 1)
-					if i >= tasks {
-						return
-					}
-					d.sums[i] = d.simulate(w, x, cands[i/S], seed, i%S)
-				}
+				work(w)
 			}()
 		}
+		// The caller is worker 0: it starts at once instead of parking
+		// while another goroutine is scheduled in its place.
+		work(d.workers[0])
 		wg.Wait()
 	}
 	if cap(d.est) < n {

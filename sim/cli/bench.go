@@ -70,9 +70,12 @@ type benchReport struct {
 }
 
 func cmdBench(args []string) error {
-	const benchUsage = "usage: sim bench rounds|security [flags]   (run 'sim bench rounds -h' for the flags)"
+	const benchUsage = "usage: sim bench rounds|security|search [flags]   (run 'sim bench rounds -h' for the flags)"
 	if len(args) > 0 && args[0] == "security" {
 		return cmdBenchSecurity(args[1:])
+	}
+	if len(args) > 0 && args[0] == "search" {
+		return cmdBenchSearch(args[1:])
 	}
 	if len(args) == 0 || args[0] != "rounds" {
 		if len(args) > 0 && (args[0] == "-h" || args[0] == "-help" || args[0] == "--help") {

@@ -29,7 +29,8 @@ commands:
   fleet     a whole fleet on this machine: embedded NATS, coordinator, one agentd per robot
   drive     play the world through the local interfaces of daemons running elsewhere
   bench     bench rounds: hop and round latency against the physics;
-            bench security: round latency with and without TLS and per-process permissions
+            bench security: round latency with and without TLS and per-process permissions;
+            bench search: the rollout hot path, each speed-up on and off, in one run
   soak      a process fleet for many rounds under loss: goroutines, heap, fds, log size
   creds     a fleet's NATS identities (nkeys) and the server's permissions
   replay    rebuild an episode from a decision log (durable stream or file), recompute its cost

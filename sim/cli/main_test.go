@@ -295,3 +295,38 @@ func TestTrain(t *testing.T) {
 		}
 	}
 }
+
+// The search benchmark runs every configuration and reports each with a
+// positive time and, where a speed-up is off, its ratio to the full search
+// (figures are for the note, not asserted: this machine's timing is
+// noisy). Bad flags are refused.
+func TestBenchSearch(t *testing.T) {
+	out, errOut, code := runSim(t, "bench", "search", "--blocks", "1", "--block", "20ms", "--json")
+	if code != 0 {
+		t.Fatalf("exit %d: %s", code, errOut)
+	}
+	var rep struct {
+		Rows []struct {
+			Name   string  `json:"name"`
+			Us     float64 `json:"us_per_op"`
+			Ns     float64 `json:"ns_per_robot_step"`
+			VsFull float64 `json:"time_vs_full"`
+		} `json:"rows"`
+	}
+	if err := json.Unmarshal([]byte(out), &rep); err != nil {
+		t.Fatalf("%v\n%s", err, out)
+	}
+	if len(rep.Rows) != 10 {
+		t.Fatalf("%d rows: %s", len(rep.Rows), out)
+	}
+	for i, r := range rep.Rows {
+		if r.Us <= 0 || r.Ns <= 0 || (i > 0 && r.Name != rep.Rows[0].Name && strings.Contains(r.Name, ", no ") && r.VsFull <= 0) {
+			t.Fatalf("row %+v", r)
+		}
+	}
+	for _, bad := range [][]string{{"--blocks", "0"}, {"--block", "0s"}, {"--blocks", "x"}} {
+		if _, errOut, code := runSim(t, append([]string{"bench", "search"}, bad...)...); code == 0 {
+			t.Fatalf("%v accepted: %s", bad, errOut)
+		}
+	}
+}

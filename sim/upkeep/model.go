@@ -233,6 +233,16 @@ func (m *Model) belief(st *State, site int) []float64 {
 	return st.bel[site*m.k : site*m.k+m.k]
 }
 
+// WithoutTables is m with the belief tables off: every belief propagated
+// step by step, as before they existed. The same decisions, bit for bit;
+// it is there to measure what the tables save (sim bench search). States
+// are not shared between the two: each model steps states it made.
+func (m *Model) WithoutTables() *Model {
+	out := *m
+	out.ages, out.tab, out.tabQ, out.tabEnd = 0, nil, nil, nil
+	return &out
+}
+
 // rowOf finds the table row holding exactly b for site (the youngest age
 // that does), or -1: a belief that came over the wire rejoins the tables.
 func (m *Model) rowOf(site int, b []float64) int32 {

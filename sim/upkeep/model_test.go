@@ -460,8 +460,7 @@ func TestTablesChangeNoBit(t *testing.T) {
 	if m.ages == 0 {
 		t.Fatal("the demo park has no belief tables")
 	}
-	plain := *m
-	plain.ages, plain.tab, plain.tabQ, plain.tabEnd = 0, nil, nil, nil
+	plain := *m.WithoutTables()
 	s, p := m.NewState(), plain.NewState()
 	m.Start(s, nil)
 	plain.Start(p, nil)
