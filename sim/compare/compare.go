@@ -11,6 +11,7 @@ import (
 
 	"baton/agentd/decide"
 	"baton/sim/assign"
+	"baton/sim/auction"
 	"baton/sim/episode"
 	"baton/sim/model"
 )
@@ -25,7 +26,14 @@ const (
 	// base policy.
 	Assignment  = "assignment"
 	OneOnAssign = "one-at-a-time+assignment"
+	// Auction is a consensus-based bundle auction among the robots at
+	// every step (sim/auction); OneOnAuction is rollout on it.
+	Auction      = "auction"
+	OneOnAuction = "one-at-a-time+auction"
 )
+
+// known lists every policy name, for errors and help.
+var known = []string{Base, AllAtOnce, OneAtTime, Assignment, OneOnAssign, Auction, OneOnAuction}
 
 // Options of a comparison.
 type Options struct {
@@ -42,17 +50,32 @@ type Options struct {
 	Now func() time.Time
 	// Progress, if set, is called after each episode of each policy.
 	Progress func(done, total int)
+	// Auction configures the auction policies (zero: sim/auction's defaults).
+	Auction auction.Config
 }
 
 // Row is one policy's summary.
 type Row struct {
-	Name          string    `json:"name"`
-	MeanCost      float64   `json:"mean_cost"`
-	CI95          float64   `json:"ci95"`
-	MeanSteps     float64   `json:"mean_steps"`
-	QPerDecision  float64   `json:"qfactors_per_decision"`
-	MsPerDecision float64   `json:"ms_per_decision"`
-	Costs         []float64 `json:"-"`
+	Name          string  `json:"name"`
+	MeanCost      float64 `json:"mean_cost"`
+	CI95          float64 `json:"ci95"`
+	MeanSteps     float64 `json:"mean_steps"`
+	QPerDecision  float64 `json:"qfactors_per_decision"`
+	MsPerDecision float64 `json:"ms_per_decision"`
+	// MessagesPerDecision counts messages between robots per joint
+	// decision as a fleet would exchange them: none for a policy every
+	// robot computes alike from the shared state (base, assignment), each
+	// robot's decision to every other for one-at-a-time rollout (m(m-1)),
+	// and one per robot per neighbour per bidding round for the auction.
+	MessagesPerDecision float64 `json:"messages_per_decision"`
+	// BiddingRounds is the auction's rounds of bidding per decision
+	// (including those that confirm nothing changes any more) and
+	// SettledRound the round in which its last change came.
+	BiddingRounds float64 `json:"bidding_rounds_per_decision,omitempty"`
+	SettledRound  float64 `json:"settled_round_per_decision,omitempty"`
+	// Unsettled is how many auctions hit their round cap.
+	Unsettled int       `json:"auctions_unsettled,omitempty"`
+	Costs     []float64 `json:"-"`
 }
 
 // Report is the whole comparison.
@@ -95,6 +118,8 @@ func Run(m model.Model, o Options) (*Report, error) {
 	d := decide.New(m, o.Decide)
 	var assigned model.Model // m with the assignment policy as its base, when asked for
 	var da *decide.Decider
+	var auctioned *auction.Policy // the auction policy, its model the base of rollout on it
+	var dq *decide.Decider
 	rep := &Report{Scenario: m.Name(), Robots: m.Robots(), Episodes: o.Episodes, Seed: o.Seed, CostKind: CostKind(m),
 		Samples: d.Config().Samples, Horizon: d.Config().Horizon}
 	var run []string
@@ -109,6 +134,14 @@ func Run(m model.Model, o Options) (*Report, error) {
 				}
 				assigned, da = a, decide.New(a, o.Decide)
 			}
+		case Auction, OneOnAuction:
+			if auctioned == nil {
+				a, err := auction.NewPolicy(m, o.Auction)
+				if err != nil {
+					return nil, err
+				}
+				auctioned, dq = a, decide.New(a.Model(), o.Decide)
+			}
 		case AllAtOnce:
 			joint := math.Pow(float64(m.MaxControls()), float64(m.Robots()))
 			if joint > float64(o.MaxJoint) {
@@ -118,7 +151,7 @@ func Run(m model.Model, o Options) (*Report, error) {
 				continue
 			}
 		default:
-			return nil, fmt.Errorf("unknown policy %q (known: %s, %s, %s, %s, %s)", name, Base, AllAtOnce, OneAtTime, Assignment, OneOnAssign)
+			return nil, fmt.Errorf("unknown policy %q (known: %s)", name, strings.Join(known, ", "))
 		}
 		run = append(run, name)
 	}
@@ -128,6 +161,9 @@ func Run(m model.Model, o Options) (*Report, error) {
 		row := Row{Name: name}
 		var steps, decisions, qf int
 		var compute time.Duration
+		if auctioned != nil {
+			auctioned.Decisions, auctioned.Rounds, auctioned.Settled, auctioned.Messages, auctioned.Unsettled = 0, 0, 0, 0, 0
+		}
 		for i := range o.Episodes {
 			seed := episode.Seed(o.Seed, i)
 			fleet := episode.FleetSeed(seed)
@@ -142,6 +178,10 @@ func Run(m model.Model, o Options) (*Report, error) {
 				p = decide.Base{M: assigned}
 			case OneOnAssign:
 				p = decide.OneAtATimePolicy{D: da, Order: o.Order, Seed: fleet}
+			case Auction:
+				p = auctioned
+			case OneOnAuction:
+				p = decide.OneAtATimePolicy{D: dq, Order: o.Order, Seed: fleet}
 			}
 			res, err := episode.Run(m, p, seed, o.Now)
 			if err != nil {
@@ -162,6 +202,16 @@ func Run(m model.Model, o Options) (*Report, error) {
 		if decisions > 0 {
 			row.QPerDecision = float64(qf) / float64(decisions)
 			row.MsPerDecision = compute.Seconds() * 1000 / float64(decisions)
+			switch name {
+			case OneAtTime, OneOnAssign, OneOnAuction:
+				row.MessagesPerDecision = float64(m.Robots() * (m.Robots() - 1))
+			case Auction:
+				n := float64(auctioned.Decisions)
+				row.MessagesPerDecision = float64(auctioned.Messages) / n
+				row.BiddingRounds = float64(auctioned.Rounds) / n
+				row.SettledRound = float64(auctioned.Settled) / n
+				row.Unsettled = auctioned.Unsettled
+			}
 		}
 		rep.Policies = append(rep.Policies, row)
 	}
@@ -203,10 +253,21 @@ func (r *Report) WriteTable(w io.Writer) {
 	for _, p := range r.Policies {
 		wn = max(wn, len(p.Name))
 	}
-	fmt.Fprintf(w, "%-*s %11s %9s %11s %13s %12s\n", wn, "policy", "mean cost", "95% CI", "mean steps", "Q/decision", "ms/decision")
-	fmt.Fprintln(w, strings.Repeat("-", wn+61))
+	fmt.Fprintf(w, "%-*s %11s %9s %11s %11s %12s %10s %14s\n", wn, "policy", "mean cost", "95% CI", "mean steps",
+		"Q/decision", "ms/decision", "msgs/dec", "bid rounds/dec")
+	fmt.Fprintln(w, strings.Repeat("-", wn+86))
+	unsettled := 0
 	for _, p := range r.Policies {
-		fmt.Fprintf(w, "%-*s %11.2f %9s %11.1f %13.0f %12.2f\n", wn, p.Name, p.MeanCost, fmt.Sprintf("±%.2f", p.CI95), p.MeanSteps, p.QPerDecision, p.MsPerDecision)
+		rounds := "-"
+		if p.BiddingRounds > 0 {
+			rounds = fmt.Sprintf("%.2f", p.BiddingRounds)
+		}
+		fmt.Fprintf(w, "%-*s %11.2f %9s %11.1f %11.0f %12.3f %10.1f %14s\n", wn, p.Name, p.MeanCost, fmt.Sprintf("±%.2f", p.CI95),
+			p.MeanSteps, p.QPerDecision, p.MsPerDecision, p.MessagesPerDecision, rounds)
+		unsettled += p.Unsettled
+	}
+	if unsettled > 0 {
+		fmt.Fprintf(w, "%d auctions did not settle within their round cap (the robots followed their paths as they stood)\n", unsettled)
 	}
 	for _, s := range r.Skipped {
 		fmt.Fprintln(w, s)

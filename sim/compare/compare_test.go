@@ -1,12 +1,14 @@
 package compare
 
 import (
+	"math"
 	"strings"
 	"testing"
 
 	"baton/agentd/decide"
 	"baton/sim/episode"
 	"baton/sim/harbor"
+	"baton/sim/model"
 	"baton/sim/upkeep"
 )
 
@@ -106,6 +108,45 @@ func TestReplay(t *testing.T) {
 	for i, c := range a.Policies[0].Costs {
 		if b.Policies[0].Costs[i] != c {
 			t.Fatal("same seed, different costs")
+		}
+	}
+}
+
+// The auction baselines run in a comparison with their effort counted: the
+// auction's bidding rounds and messages per decision (one per robot per
+// neighbour per round, all hearing all: 3 x 2 per round), rollout's m(m-1)
+// decision messages, none for the assignment; the table names the columns.
+func TestAuctionInComparison(t *testing.T) {
+	hm, err := harbor.Default(3)
+	if err != nil {
+		t.Fatal(err)
+	}
+	um, err := upkeep.Default(3)
+	if err != nil {
+		t.Fatal(err)
+	}
+	for _, m := range []model.Model{hm, um} {
+		rep, err := Run(m, Options{Episodes: 2, Seed: 3, Decide: decide.Config{Samples: 4, Horizon: 5},
+			Policies: []string{Assignment, Auction, OneOnAuction}})
+		if err != nil {
+			t.Fatal(err)
+		}
+		a, oa, as := rep.Row(Auction), rep.Row(OneOnAuction), rep.Row(Assignment)
+		if a == nil || oa == nil || as == nil {
+			t.Fatalf("%s: rows missing", rep.Scenario)
+		}
+		if a.BiddingRounds < 1 || a.SettledRound > a.BiddingRounds || math.Abs(a.MessagesPerDecision-6*a.BiddingRounds) > 1e-9 {
+			t.Fatalf("%s: auction row %+v", rep.Scenario, a)
+		}
+		if oa.MessagesPerDecision != 6 || as.MessagesPerDecision != 0 || oa.BiddingRounds != 0 {
+			t.Fatalf("%s: rollout on the auction %+v, assignment %+v", rep.Scenario, oa, as)
+		}
+		var b strings.Builder
+		rep.WriteTable(&b)
+		for _, col := range []string{"msgs/dec", "bid rounds/dec", "one-at-a-time+auction"} {
+			if !strings.Contains(b.String(), col) {
+				t.Fatalf("table lacks %q:\n%s", col, b.String())
+			}
 		}
 	}
 }

@@ -8,6 +8,7 @@ import (
 
 	"baton/agentd/decide"
 	"baton/sim/assign"
+	"baton/sim/auction"
 	"baton/sim/episode"
 	"baton/sim/harbor"
 	"baton/sim/model"
@@ -47,8 +48,12 @@ func TestGoldenDecisions(t *testing.T) {
 		if err != nil {
 			t.Fatal(err)
 		}
-		d, da := decide.New(c.m, cfg), decide.New(wrapped, cfg)
-		for _, pol := range []string{Base, OneAtTime, Assignment, OneOnAssign} {
+		ap, err := auction.NewPolicy(c.m, auction.Config{})
+		if err != nil {
+			t.Fatal(err)
+		}
+		d, da, dq := decide.New(c.m, cfg), decide.New(wrapped, cfg), decide.New(ap.Model(), cfg)
+		for _, pol := range []string{Base, OneAtTime, Assignment, OneOnAssign, Auction, OneOnAuction} {
 			h := sha256.New()
 			for e := range 3 {
 				seed := episode.Seed(5, e)
@@ -62,6 +67,10 @@ func TestGoldenDecisions(t *testing.T) {
 					p = decide.Base{M: wrapped}
 				case OneOnAssign:
 					p = decide.OneAtATimePolicy{D: da, Seed: episode.FleetSeed(seed)}
+				case Auction:
+					p = ap
+				case OneOnAuction:
+					p = decide.OneAtATimePolicy{D: dq, Seed: episode.FleetSeed(seed)}
 				}
 				if _, err := episode.Run(c.m, &recorder{Policy: p, s: h}, seed, nil); err != nil {
 					t.Fatal(err)
@@ -79,6 +88,10 @@ func TestGoldenDecisions(t *testing.T) {
 
 var goldenDigests = map[string]string{
 	"harbor assignment":               "3eab2d7fbf5ed42f",
+	"harbor auction":                  "1183514b1b7dcf96",
+	"harbor one-at-a-time+auction":    "b6b3a8f7be5a202d",
+	"upkeep auction":                  "e7a5efd67166d73d",
+	"upkeep one-at-a-time+auction":    "62fd92bc6a0cfdde",
 	"harbor base":                     "0daf0d48cbd30c44",
 	"harbor one-at-a-time":            "ab7738cbdd903b4d",
 	"harbor one-at-a-time+assignment": "9dfc9ea8c3e496a1",
