@@ -17,8 +17,6 @@ import (
 	"fmt"
 	"math"
 	"runtime"
-	"sync"
-	"sync/atomic"
 
 	"baton/sim/model"
 )
@@ -86,6 +84,7 @@ type Decider struct {
 	cands   [][]int   // reusable joint-control buffers
 	est     []Estimate
 	joint   []int
+	pool    *pool            // the workers besides the caller, when there are any
 	jb      model.JointBaser // m's, asserted once rather than every step
 	al      model.Aliaser
 	slot    []int      // Turn: the candidate standing for each control
@@ -113,6 +112,12 @@ func New(m model.Model, cfg Config) *Decider {
 		d.term, _ = m.(model.TerminalCoster)
 	}
 	d.jb, _ = m.(model.JointBaser)
+	if cfg.Workers > 1 {
+		d.pool = newPool(cfg.Workers - 1)
+		// The pool's goroutines hold the pool, not the Decider: once the
+		// Decider is unreachable they are told to stop.
+		runtime.AddCleanup(d, func(p *pool) { p.stop() }, d.pool)
+	}
 	d.al, _ = m.(model.Aliaser)
 	for range cfg.Workers {
 		r := m.Robots()
@@ -214,28 +219,9 @@ func (d *Decider) evaluate(x model.State, cands [][]int, seed uint64) Stats {
 			d.sums[i] = d.simulate(w, x, cands[i/S], seed, i%S)
 		}
 	} else {
-		var next atomic.Int64
-		var wg sync.WaitGroup
-		work := func(w *worker) {
-			for {
-				i := int(next.Add(1) - 1)
-				if i >= tasks {
-					return
-				}
-				d.sums[i] = d.simulate(w, x, cands[i/S], seed, i%S)
-			}
-		}
-		for _, w := range d.workers[1:] {
-			wg.Add(1)
-			go func() {
-				defer wg.Done()
-				work(w)
-			}()
-		}
-		// The caller is worker 0: it starts at once instead of parking
-		// while another goroutine is scheduled in its place.
-		work(d.workers[0])
-		wg.Wait()
+		d.pool.do(tasks, func(w, i int) {
+			d.sums[i] = d.simulate(d.workers[w], x, cands[i/S], seed, i%S)
+		})
 	}
 	if cap(d.est) < n {
 		d.est = make([]Estimate, n)

@@ -1,8 +1,10 @@
 package decide
 
 import (
+	"runtime"
 	"slices"
 	"testing"
+	"time"
 
 	"baton/sim/harbor"
 	"baton/sim/model"
@@ -199,4 +201,24 @@ func BenchmarkDecision32Harbor(b *testing.B) {
 	}
 	b.ReportMetric(float64(b.Elapsed().Microseconds())/1000/float64(b.N), "ms/decision")
 	b.ReportMetric(float64(sim*int64(m.Robots()))/b.Elapsed().Seconds(), "robot-steps/s")
+}
+
+// A Decider's extra workers live between decisions (waking a goroutine on
+// an idle core costs about a turn) and stop once the Decider is dropped:
+// 20 Deciders made and dropped leave no goroutines behind.
+func TestWorkersStopWithDecider(t *testing.T) {
+	m, x := harborStart(t, 4)
+	before := runtime.NumGoroutine()
+	for seed := range uint64(20) {
+		d := New(m, Config{Workers: 3, Samples: 4, Horizon: 3})
+		d.Turn(x, 0, []int{-1, -1, -1, -1}, seed)
+	}
+	deadline := time.Now().Add(10 * time.Second)
+	for runtime.NumGoroutine() > before {
+		if time.Now().After(deadline) {
+			t.Fatalf("%d goroutines, %d before the Deciders", runtime.NumGoroutine(), before)
+		}
+		runtime.GC()
+		time.Sleep(10 * time.Millisecond)
+	}
 }

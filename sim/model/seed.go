@@ -31,8 +31,18 @@ type RNG struct {
 
 // NewRNG returns a generator seeded with seed.
 func NewRNG(seed uint64) *RNG {
-	src := rand.NewPCG(seed, splitmix(seed))
-	return &RNG{src: src, Rand: rand.New(src)}
+	// The generator's state is written on every draw: a cache line of its
+	// own on both sides, so generators of different rollout workers (made
+	// one after another, 16 bytes each) never share a line.
+	p := &paddedPCG{}
+	p.src.Seed(seed, splitmix(seed))
+	return &RNG{src: &p.src, Rand: rand.New(&p.src)}
+}
+
+type paddedPCG struct {
+	_   [64]byte
+	src rand.PCG
+	_   [64]byte
 }
 
 // Reseed restarts the stream at seed.
