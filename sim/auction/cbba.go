@@ -573,6 +573,20 @@ type TimeDiscounted struct {
 	FromAgent func(agent, task int) float64
 	// Between is the travel time from task a to task b.
 	Between func(a, b int) float64
+	// Powers, if set, holds Lambda^k at k for whole times k (PowTable);
+	// a time it covers is looked up instead of raised, with the same bits.
+	Powers []float64
+}
+
+// PowTable is Lambda^k for k = 0..n-1, each as math.Pow gives it: the
+// table TimeDiscounted.Powers wants (math.Pow is most of a scenario
+// auction's time, and scenario times are whole steps).
+func PowTable(lambda float64, n int) []float64 {
+	t := make([]float64, n)
+	for k := range t {
+		t[k] = math.Pow(lambda, float64(k))
+	}
+	return t
 }
 
 // Score is the path score, task by task; use it as Problem.Score.
@@ -592,7 +606,11 @@ func (td TimeDiscounted) Score(agent int, path []int, value []float64) {
 		if td.Reward != nil {
 			r = td.Reward[j]
 		}
-		value[n] = r * math.Pow(td.Lambda, tau)
+		if k := int(tau); float64(k) == tau && k >= 0 && k < len(td.Powers) {
+			value[n] = r * td.Powers[k]
+		} else {
+			value[n] = r * math.Pow(td.Lambda, tau)
+		}
 	}
 }
 

@@ -539,3 +539,28 @@ func TestOwnResetKeepsGreedy(t *testing.T) {
 		t.Fatalf("CBBA %v (%v), want SGA's %v", res.Paths, err, want)
 	}
 }
+
+// A power table changes no bit of a score: whole times are looked up,
+// others (and those past the table) raised as before.
+func TestPowTableSameBits(t *testing.T) {
+	rng := rand.New(rand.NewPCG(4, 4))
+	for range 2000 {
+		lambda := 0.05 + 0.9*rng.Float64()
+		n := 1 + rng.IntN(4)
+		path := rng.Perm(6)[:n]
+		times := []float64{0, 1, 2, 3, 7, 40, 0.5, 2.25}
+		from := func(_, j int) float64 { return times[j%len(times)] }
+		between := func(a, b int) float64 { return times[(a+b)%len(times)] }
+		plain := TimeDiscounted{Lambda: lambda, FromAgent: from, Between: between}
+		tabled := plain
+		tabled.Powers = PowTable(lambda, 20)
+		v1, v2 := make([]float64, n), make([]float64, n)
+		plain.Score(0, path, v1)
+		tabled.Score(0, path, v2)
+		for i := range v1 {
+			if math.Float64bits(v1[i]) != math.Float64bits(v2[i]) {
+				t.Fatalf("lambda %v path %v: %v raised, %v tabled", lambda, path, v1, v2)
+			}
+		}
+	}
+}

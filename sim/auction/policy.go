@@ -81,9 +81,17 @@ func Wrap(m model.Model, cfg Config) (model.Model, error) {
 	}
 	switch m := m.(type) {
 	case *harbor.Model:
-		return harborAuction{m, cfg}, nil
+		// A path is at most Bundle legs of at most Width+Height steps.
+		return harborAuction{m, cfg, PowTable(cfg.Lambda, cfg.Bundle*(m.Width()+m.Height())+1)}, nil
 	case *upkeep.Model:
-		return upkeepAuction{m, cfg}, nil
+		far := 0
+		for a := range m.NumSites() {
+			for b := range m.NumSites() {
+				far = max(far, m.Distance(a, b))
+			}
+		}
+		// At most Bundle legs of at most far roads and one service each.
+		return upkeepAuction{m, cfg, PowTable(cfg.Lambda, cfg.Bundle*(far+1)+1)}, nil
 	}
 	return nil, fmt.Errorf("auction: no targets known for scenario %s", m.Name())
 }
@@ -97,6 +105,7 @@ type auctioneer interface {
 type harborAuction struct {
 	*harbor.Model
 	cfg Config
+	pow []float64 // PowTable for the grid's longest paths
 }
 
 func (h harborAuction) Base(s model.State, r int) int {
@@ -143,6 +152,7 @@ func (h harborAuction) auction(s model.State, u []int) (Stats, error) {
 		Reward:    reward,
 		FromAgent: func(i, j int) float64 { return float64(h.Distance(boats[i], cells[j])) },
 		Between:   func(a, b int) float64 { return float64(h.Distance(cells[a], cells[b])) },
+		Powers:    h.pow,
 	}
 	res, err := Solve(Problem{
 		Agents: len(boats), Tasks: len(cells), Bundle: h.cfg.Bundle,
@@ -167,6 +177,7 @@ func (h harborAuction) auction(s model.State, u []int) (Stats, error) {
 type upkeepAuction struct {
 	*upkeep.Model
 	cfg Config
+	pow []float64 // PowTable for the site graph's longest paths
 }
 
 func (k upkeepAuction) Base(s model.State, r int) int {
@@ -198,6 +209,7 @@ func (k upkeepAuction) auction(s model.State, u []int) (Stats, error) {
 			Service:   service,
 			FromAgent: func(i, j int) float64 { return float64(k.Distance(pos[i], targets[j])) },
 			Between:   func(a, b int) float64 { return float64(k.Distance(targets[a], targets[b])) },
+			Powers:    k.pow,
 		}
 		res, err = Solve(Problem{
 			Agents: len(pos), Tasks: len(targets), Bundle: k.cfg.Bundle,
