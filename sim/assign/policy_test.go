@@ -74,3 +74,46 @@ func TestWrapUnknownScenario(t *testing.T) {
 type fakeModel struct{ model.Model }
 
 func (fakeModel) Name() string { return "orchard" }
+
+// The wrapped model's BaseAll (one solve for the fleet) is its Base robot
+// by robot, and not the scenario's own BaseAll its embedding would promote.
+func TestBaseAllIsBase(t *testing.T) {
+	for _, sc := range []struct {
+		name string
+		m    model.Model
+	}{
+		{"harbor", must(harbor.Default(5))},
+		{"upkeep", must(upkeep.Default(4))},
+	} {
+		a, err := Wrap(sc.m)
+		if err != nil {
+			t.Fatal(err)
+		}
+		rng := model.NewRNG(2)
+		s := a.NewState()
+		a.Start(s, rng.Rand)
+		u, own := make([]int, a.Robots()), make([]int, a.Robots())
+		differs := false
+		for step := 0; step < 40 && !a.Terminal(s); step++ {
+			a.(model.JointBaser).BaseAll(s, u)
+			sc.m.(model.JointBaser).BaseAll(s, own)
+			for r := range u {
+				if b := a.Base(s, r); u[r] != b {
+					t.Fatalf("%s step %d robot %d: BaseAll %d, Base %d", sc.name, step, r, u[r], b)
+				}
+				differs = differs || u[r] != own[r]
+			}
+			a.Step(s, u, rng.Rand)
+		}
+		if !differs {
+			t.Fatalf("%s: the assignment never differed from the scenario's base policy", sc.name)
+		}
+	}
+}
+
+func must[T any](v T, err error) T {
+	if err != nil {
+		panic(err)
+	}
+	return v
+}

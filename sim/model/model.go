@@ -78,7 +78,10 @@ type Enumerable interface {
 // JointBaser is implemented by models whose base policy decides for the
 // whole fleet at once (an assignment, an auction): BaseAll fills u with
 // every robot's base control in s, equal to Base(s, r) for each r, at the
-// cost of one solve rather than one per robot.
+// cost of one solve rather than one per robot. Harbor and upkeep have one;
+// a wrapper that embeds a scenario's concrete model to replace Base must
+// replace BaseAll as well (or embed the Model interface, which promotes
+// only Model's methods), or BaseJoint would take the scenario's own.
 type JointBaser interface {
 	BaseAll(s State, u []int)
 }

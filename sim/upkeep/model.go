@@ -493,6 +493,63 @@ func (m *Model) ExpectedCost(s model.State) float64 {
 	return total
 }
 
+// tail is site's P(level >= threshold level) in st.
+func (m *Model) tail(st *State, site int) float64 {
+	if i := st.ti[site]; i >= 0 {
+		return m.tabQ[i]
+	}
+	return m.tailProb(st.bel[site*m.k : site*m.k+m.k])
+}
+
+// dueMax bounds the due sites BaseAll lists on the stack.
+const dueMax = 32
+
+var _ model.JointBaser = (*Model)(nil)
+
+// BaseAll is Base for every robot, the sites due for service found once
+// for the fleet rather than once per robot (each robot then weighs only
+// those, in index order, by Base's rule).
+func (m *Model) BaseAll(s model.State, u []int) {
+	st := s.(*State)
+	var due [dueMax]int32
+	var dq [dueMax]float64
+	nd := 0
+	for site := range m.n {
+		q := m.tail(st, site)
+		if q <= m.threshProb {
+			continue
+		}
+		if nd == dueMax {
+			for r := range u {
+				u[r] = m.Base(s, r)
+			}
+			return
+		}
+		due[nd], dq[nd] = int32(site), q
+		nd++
+	}
+	n := m.n
+	for r := range u {
+		at := st.pos[r]
+		if m.belief(st, at)[0] == 0 {
+			u[r] = 0
+			continue
+		}
+		best, bestD, bestP := -1, 0, 0.0
+		d := m.dist[at*n : (at+1)*n]
+		for i := range nd {
+			site, q := int(due[i]), dq[i]
+			if best < 0 || d[site] < bestD || (d[site] == bestD && q > bestP) {
+				best, bestD, bestP = site, d[site], q
+			}
+		}
+		u[r] = 0
+		if best >= 0 {
+			u[r] = m.hop[at*n+best]
+		}
+	}
+}
+
 // Base is the base policy; see the package comment.
 func (m *Model) Base(s model.State, r int) int {
 	st := s.(*State)
@@ -503,12 +560,7 @@ func (m *Model) Base(s model.State, r int) int {
 	best, bestD, bestP := -1, 0, 0.0
 	d := m.dist[at*n : (at+1)*n]
 	for site := range n {
-		var q float64
-		if i := st.ti[site]; i >= 0 {
-			q = m.tabQ[i]
-		} else {
-			q = m.tailProb(st.bel[site*m.k : site*m.k+m.k])
-		}
+		q := m.tail(st, site)
 		if q <= m.threshProb {
 			continue
 		}

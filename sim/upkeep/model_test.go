@@ -1,10 +1,12 @@
 package upkeep
 
 import (
+	"fmt"
 	"math"
 	"math/rand/v2"
 	"reflect"
 	"slices"
+	"strings"
 	"testing"
 
 	"baton/sim/model"
@@ -542,4 +544,63 @@ func bitsEqual(a, b []float64) bool {
 		}
 	}
 	return true
+}
+
+// BaseAll, the due sites found once for the fleet, gives every robot
+// Base's control: the demo park stepped 300 times with seeded controls
+// (sites fall due and get serviced), and a 40-site ring whose sites are all
+// due (more than BaseAll lists at once), every robot anywhere.
+func TestBaseAllIsBase(t *testing.T) {
+	m, err := Default(4)
+	if err != nil {
+		t.Fatal(err)
+	}
+	check := func(m *Model, s model.State, what string) {
+		t.Helper()
+		u := make([]int, m.Robots())
+		m.BaseAll(s, u)
+		for r := range u {
+			if b := m.Base(s, r); u[r] != b {
+				t.Fatalf("%s: robot %d: BaseAll %d, Base %d", what, r, u[r], b)
+			}
+		}
+	}
+	s := m.NewState()
+	m.Start(s, nil)
+	rng := model.NewRNG(8)
+	u := make([]int, m.Robots())
+	due := 0
+	for step := range 300 {
+		check(m, s, fmt.Sprintf("park step %d", step))
+		for site := range m.NumSites() {
+			if m.Due(s, site) {
+				due++
+			}
+		}
+		for r := range u {
+			u[r] = rng.IntN(m.NumControls(s, r))
+		}
+		m.Step(s, u, rng.Rand)
+	}
+	if due == 0 {
+		t.Fatal("no site ever fell due")
+	}
+	var sites, roads []string
+	for i := range 40 {
+		sites = append(sites, fmt.Sprintf("{name: s%d}", i))
+		roads = append(roads, fmt.Sprintf("[s%d, s%d]", i, (i+1)%40))
+	}
+	ring := mustParse(t, lines("levels: 2", "level_cost: [0, 1, 5]", "threshold_level: 2", "threshold_prob: 0.3",
+		"sites: ["+strings.Join(sites, ", ")+"]", "roads: ["+strings.Join(roads, ", ")+"]"), 3)
+	rs := ring.NewState()
+	ring.Start(rs, nil)
+	for site := range 40 {
+		ring.SetBelief(rs, site, []float64{0.5, 0, 0.5})
+	}
+	for at := range 40 {
+		for r := range 3 {
+			rs.(*State).pos[r] = (at + 13*r) % 40
+		}
+		check(ring, rs, fmt.Sprintf("ring, robots from site %d", at))
+	}
 }
