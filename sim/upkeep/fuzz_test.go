@@ -1,13 +1,16 @@
 package upkeep
 
 import (
-	"baton/sim/fuzzcheck"
+	"encoding/binary"
 	"fmt"
+	"math"
 	"os"
 	"reflect"
+	"slices"
 	"strings"
 	"testing"
 
+	"baton/sim/fuzzcheck"
 	"baton/sim/model"
 )
 
@@ -141,4 +144,70 @@ func checkParse(t *testing.T, data []byte, robots int) {
 	u := make([]int, m.Robots())
 	model.BaseJoint(m, s, u)
 	m.Step(s, u, model.NewRNG(2).Rand)
+}
+
+// FuzzUnflatten feeds decision-state snapshots (what a robot receives over
+// the bus) built from arbitrary bytes to the demo park: a snapshot is
+// refused with dst untouched, or admitted, in which case its beliefs may
+// rejoin the tables and the state flattens back to the same values and
+// steps without a panic. Seeds: a real snapshot after a few steps, and
+// damaged ones.
+func FuzzUnflatten(f *testing.F) {
+	m, err := Default(4)
+	if err != nil {
+		f.Fatal(err)
+	}
+	s := m.NewState()
+	m.Start(s, nil)
+	rng := model.NewRNG(3)
+	u := make([]int, 4)
+	for range 7 {
+		model.BaseJoint(m, s, u)
+		m.Step(s, u, rng.Rand)
+	}
+	ints, reals := m.Flatten(s, nil, nil)
+	enc := func(ints []int32, reals []float64) []byte {
+		var b []byte
+		for _, v := range ints {
+			b = binary.LittleEndian.AppendUint32(b, uint32(v))
+		}
+		for _, v := range reals {
+			b = binary.LittleEndian.AppendUint64(b, math.Float64bits(v))
+		}
+		return b
+	}
+	f.Add(enc(ints, reals))
+	bad := append([]float64(nil), reals...)
+	bad[5] = math.NaN()
+	f.Add(enc(ints, bad))
+	f.Add(enc([]int32{0, 1, 2, 99}, reals))
+	f.Add(enc(ints, reals[:10]))
+	f.Fuzz(func(t *testing.T, data []byte) {
+		var in []int32
+		for len(in) < 4 && len(data) >= 4 {
+			in = append(in, int32(binary.LittleEndian.Uint32(data)))
+			data = data[4:]
+		}
+		var re []float64
+		for len(data) >= 8 && len(re) < 400 {
+			re = append(re, math.Float64frombits(binary.LittleEndian.Uint64(data)))
+			data = data[8:]
+		}
+		dst := m.NewState()
+		m.CopyState(dst, s)
+		i0, r0 := m.Flatten(dst, nil, nil)
+		if err := m.Unflatten(dst, in, re); err != nil {
+			i1, r1 := m.Flatten(dst, nil, nil)
+			if !slices.Equal(i0, i1) || !bitsEqual(r0, r1) {
+				t.Fatalf("a refused snapshot (%v) changed the state", err)
+			}
+			return
+		}
+		i1, r1 := m.Flatten(dst, nil, nil)
+		if !slices.Equal(i1, in) || !slices.Equal(r1, re) {
+			t.Fatalf("admitted %v %v, flattens to %v %v", in, re, i1, r1)
+		}
+		model.BaseJoint(m, dst, u)
+		m.Step(dst, u, model.NewRNG(1).Rand)
+	})
 }
