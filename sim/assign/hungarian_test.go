@@ -11,7 +11,14 @@ import (
 // of its own, so the optimum is the diagonal of 2s: 6). The figures are
 // from memory of the usual textbook illustration.
 func TestWorkedExample(t *testing.T) {
-	to, total := Solve([][]float64{{2, 3, 3}, {3, 2, 3}, {3, 3, 2}})
+	// The published example of a reference library: SciPy's
+	// scipy.optimize.linear_sum_assignment documentation (its Examples
+	// section) solves this matrix to columns [1, 0, 2] at a total of 5.
+	to, total := Solve([][]float64{{4, 1, 3}, {2, 0, 5}, {3, 2, 2}})
+	if total != 5 || to[0] != 1 || to[1] != 0 || to[2] != 2 {
+		t.Fatalf("SciPy's example: %v %g, want [1 0 2] at 5", to, total)
+	}
+	to, total = Solve([][]float64{{2, 3, 3}, {3, 2, 3}, {3, 3, 2}})
 	if total != 6 || to[0] != 0 || to[1] != 1 || to[2] != 2 {
 		t.Fatalf("%v %g, want the diagonal at 6", to, total)
 	}
