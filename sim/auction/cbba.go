@@ -39,6 +39,7 @@ import (
 	"errors"
 	"fmt"
 	"math"
+	"slices"
 
 	"baton/sim/model"
 )
@@ -242,9 +243,9 @@ func Solve(p Problem) (Result, error) {
 		for i := range agents {
 			a := &agents[i]
 			prev := prevB[i*(p.Bundle+1):]
-			if !equalInts(prev[1:1+prev[0]], a.bundle) ||
-				!equalFloats(prevY[i*nt:(i+1)*nt], a.y) ||
-				!equalInts(prevZ[i*nt:(i+1)*nt], a.z) {
+			if !slices.Equal(prev[1:1+prev[0]], a.bundle) ||
+				!slices.Equal(prevY[i*nt:(i+1)*nt], a.y) ||
+				!slices.Equal(prevZ[i*nt:(i+1)*nt], a.z) {
 				changed = true
 				break
 			}
@@ -471,30 +472,6 @@ func insert(s []int, n, j int) []int {
 	copy(s[n+1:], s[n:])
 	s[n] = j
 	return s
-}
-
-func equalInts(a, b []int) bool {
-	if len(a) != len(b) {
-		return false
-	}
-	for i := range a {
-		if a[i] != b[i] {
-			return false
-		}
-	}
-	return true
-}
-
-func equalFloats(a, b []float64) bool {
-	if len(a) != len(b) {
-		return false
-	}
-	for i := range a {
-		if a[i] != b[i] {
-			return false
-		}
-	}
-	return true
 }
 
 func (p Problem) validate() error {

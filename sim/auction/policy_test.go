@@ -48,21 +48,7 @@ func TestRolloutOnAuctionImproves(t *testing.T) {
 				}
 				start := a.NewState()
 				a.Start(start, model.NewRNG(seed).Rand)
-				sp, err := exact.Enumerate(e, start, 20000)
-				if err != nil {
-					t.Fatal(err)
-				}
-				mu := exact.BasePolicy(sp)
-				Jmu, err := exact.EvaluatePolicy(sp, mu)
-				if err != nil {
-					t.Fatal(err)
-				}
-				order := make([]int, sp.Robots())
-				for r := range order {
-					order[r] = r
-				}
-				roll := exact.OneAtATime(sp, mu, Jmu, order)
-				J, err := exact.EvaluatePolicy(sp, roll.Policy)
+				Jmu, J, err := exact.OneAtATimeOnBase(e, start, 20000)
 				if err != nil {
 					t.Fatal(err)
 				}

@@ -248,3 +248,26 @@ func Solve(m model.Enumerable, start model.State, maxStates int) (Report, error)
 	rep.Optimal = Jopt[0]
 	return rep, nil
 }
+
+// OneAtATimeOnBase enumerates m from start (refusing more than maxStates
+// states) and evaluates exactly, at every state, m's base policy (Jbase)
+// and one-at-a-time rollout on it in robot order 0..m-1 (Jroll): what a
+// test of the cost improvement property compares, for any base policy.
+func OneAtATimeOnBase(m model.Enumerable, start model.State, maxStates int) (Jbase, Jroll []float64, err error) {
+	sp, err := Enumerate(m, start, maxStates)
+	if err != nil {
+		return nil, nil, err
+	}
+	mu := BasePolicy(sp)
+	if Jbase, err = EvaluatePolicy(sp, mu); err != nil {
+		return nil, nil, fmt.Errorf("base policy: %w", err)
+	}
+	order := make([]int, sp.Robots())
+	for r := range order {
+		order[r] = r
+	}
+	if Jroll, err = EvaluatePolicy(sp, OneAtATime(sp, mu, Jbase, order).Policy); err != nil {
+		return nil, nil, fmt.Errorf("one-at-a-time rollout: %w", err)
+	}
+	return Jbase, Jroll, nil
+}
