@@ -5,6 +5,7 @@ import (
 	"fmt"
 	"math"
 	"slices"
+	"sync/atomic"
 
 	"baton/agentd/decide"
 	"baton/sim/harbor"
@@ -82,7 +83,7 @@ func Wrap(m model.Model, cfg Config) (model.Model, error) {
 	switch m := m.(type) {
 	case *harbor.Model:
 		// A path is at most Bundle legs of at most Width+Height steps.
-		return harborAuction{m, cfg, PowTable(cfg.Lambda, cfg.Bundle*(m.Width()+m.Height())+1)}, nil
+		return harborAuction{m, cfg, PowTable(cfg.Lambda, cfg.Bundle*(m.Width()+m.Height())+1), &tally{}}, nil
 	case *upkeep.Model:
 		far := 0
 		for a := range m.NumSites() {
@@ -91,7 +92,7 @@ func Wrap(m model.Model, cfg Config) (model.Model, error) {
 			}
 		}
 		// At most Bundle legs of at most far roads and one service each.
-		return upkeepAuction{m, cfg, PowTable(cfg.Lambda, cfg.Bundle*(far+1)+1)}, nil
+		return upkeepAuction{m, cfg, PowTable(cfg.Lambda, cfg.Bundle*(far+1)+1), &tally{}}, nil
 	}
 	return nil, fmt.Errorf("auction: no targets known for scenario %s", m.Name())
 }
@@ -100,12 +101,41 @@ func Wrap(m model.Model, cfg Config) (model.Model, error) {
 type auctioneer interface {
 	model.Model
 	auction(s model.State, u []int) (Stats, error)
+	troubles() *tally
+}
+
+// tally counts the auctions a wrapped model ran as a base policy (rollout
+// runs them at every simulated step, on several goroutines) that did not
+// settle within their round cap, or could not run at all.
+type tally struct{ unsettled, failed atomic.Int64 }
+
+func (t *tally) note(err error) {
+	switch {
+	case err == nil:
+	case errors.Is(err, ErrNotSettled):
+		t.unsettled.Add(1)
+	default:
+		t.failed.Add(1)
+	}
+}
+
+// Troubles is how many auctions m, a model from Wrap, has run as a base
+// policy so far that did not settle within their round cap (the robots
+// followed their paths as they stood) and that could not run at all (the
+// scenario's own base policy decided); ok is false for any other model.
+func Troubles(m model.Model) (unsettled, failed int64, ok bool) {
+	a, ok := m.(auctioneer)
+	if !ok {
+		return 0, 0, false
+	}
+	return a.troubles().unsettled.Load(), a.troubles().failed.Load(), true
 }
 
 type harborAuction struct {
 	*harbor.Model
 	cfg Config
 	pow []float64 // PowTable for the grid's longest paths
+	t   *tally
 }
 
 func (h harborAuction) Base(s model.State, r int) int {
@@ -114,7 +144,12 @@ func (h harborAuction) Base(s model.State, r int) int {
 	return u[r]
 }
 
-func (h harborAuction) BaseAll(s model.State, u []int) { h.auction(s, u) }
+func (h harborAuction) BaseAll(s model.State, u []int) {
+	_, err := h.auction(s, u)
+	h.t.note(err)
+}
+
+func (h harborAuction) troubles() *tally { return h.t }
 
 func (h harborAuction) auction(s model.State, u []int) (Stats, error) {
 	st := s.(*harbor.State)
@@ -178,6 +213,7 @@ type upkeepAuction struct {
 	*upkeep.Model
 	cfg Config
 	pow []float64 // PowTable for the site graph's longest paths
+	t   *tally
 }
 
 func (k upkeepAuction) Base(s model.State, r int) int {
@@ -186,7 +222,12 @@ func (k upkeepAuction) Base(s model.State, r int) int {
 	return u[r]
 }
 
-func (k upkeepAuction) BaseAll(s model.State, u []int) { k.auction(s, u) }
+func (k upkeepAuction) BaseAll(s model.State, u []int) {
+	_, err := k.auction(s, u)
+	k.t.note(err)
+}
+
+func (k upkeepAuction) troubles() *tally { return k.t }
 
 func (k upkeepAuction) auction(s model.State, u []int) (Stats, error) {
 	pos := k.Positions(s)
@@ -266,8 +307,10 @@ type Policy struct {
 	Settled   int // rounds until nothing changed, summed (see Stats.Settled)
 	Messages  int // messages sent, summed
 	Unsettled int // auctions that met their round cap
+	Failed    int // auctions that could not run (the scenario's base policy decided)
 
-	m auctioneer
+	m   auctioneer
+	cfg Config
 }
 
 // NewPolicy wraps m (see Wrap) and returns the auction policy on it.
@@ -276,8 +319,11 @@ func NewPolicy(m model.Model, cfg Config) (*Policy, error) {
 	if err != nil {
 		return nil, err
 	}
-	return &Policy{m: w.(auctioneer)}, nil
+	return &Policy{m: w.(auctioneer), cfg: cfg.withDefaults()}, nil
 }
+
+// Config is the auction's configuration, defaults filled in.
+func (p *Policy) Config() Config { return p.cfg }
 
 // Name is "auction".
 func (*Policy) Name() string { return "auction" }
@@ -286,8 +332,9 @@ func (*Policy) Name() string { return "auction" }
 // the auction).
 func (p *Policy) Model() model.Model { return p.m }
 
-// Decide runs the auction at x. An auction that does not settle still
-// gives a control (see Wrap) and is counted in Unsettled, not an error.
+// Decide runs the auction at x. An auction that does not settle or cannot
+// run still gives controls (see Wrap) and is counted in Unsettled or
+// Failed, not an error.
 func (p *Policy) Decide(x model.State, _ int, out []int) (decide.Stats, error) {
 	if len(out) != p.m.Robots() {
 		return decide.Stats{}, fmt.Errorf("auction: %d controls for %d robots", len(out), p.m.Robots())
@@ -301,7 +348,7 @@ func (p *Policy) Decide(x model.State, _ int, out []int) (decide.Stats, error) {
 	case errors.Is(err, ErrNotSettled):
 		p.Unsettled++
 	case err != nil:
-		return decide.Stats{}, err
+		p.Failed++
 	}
 	return decide.Stats{}, nil
 }

@@ -254,3 +254,43 @@ func TestPolicyNoTargets(t *testing.T) {
 		t.Errorf("%+v", *p)
 	}
 }
+
+// An auction cut short by its round cap still gives controls (the paths as
+// they stand) and is counted: by the policy when it decides, and by the
+// wrapped model when rollout runs it as a base policy (Troubles).
+func TestCutShortAuctionsCounted(t *testing.T) {
+	m, err := harbor.Default(4)
+	if err != nil {
+		t.Fatal(err)
+	}
+	p, err := NewPolicy(m, Config{MaxRounds: 1})
+	if err != nil {
+		t.Fatal(err)
+	}
+	s := m.NewState()
+	m.Start(s, model.NewRNG(7).Rand)
+	out := make([]int, 4)
+	if _, err := p.Decide(s, 1, out); err != nil {
+		t.Fatal(err)
+	}
+	if p.Unsettled != 1 || p.Failed != 0 {
+		t.Fatalf("policy counters %+v, want one unsettled auction", *p)
+	}
+	for r, c := range out {
+		if c < 0 || c >= m.NumControls(s, r) {
+			t.Fatalf("robot %d: control %d", r, c)
+		}
+	}
+	if u, f, ok := Troubles(p.Model()); !ok || u != 0 || f != 0 {
+		t.Fatalf("Decide's auction counted as a base policy's: %d %d %v", u, f, ok)
+	}
+	for range 3 {
+		model.BaseJoint(p.Model(), s, out)
+	}
+	if u, f, ok := Troubles(p.Model()); !ok || u != 3 || f != 0 {
+		t.Fatalf("troubles %d unsettled, %d failed (ok %v), want 3, 0", u, f, ok)
+	}
+	if _, _, ok := Troubles(m); ok {
+		t.Fatal("a model the auction did not wrap has troubles to report")
+	}
+}

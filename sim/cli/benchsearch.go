@@ -44,24 +44,29 @@ func cmdBenchSearch(args []string) error {
 	fs := newFlags("bench search", `Times the rollout search's hot path with each speed-up on and off, every
 configuration in turn within each block, so all see the same machine load;
 the medians over blocks are printed, with each configuration's time as a
-ratio of the first row of its kind (the full search: every speed-up on,
-one worker for turns, two for the 32-boat decision). Decisions are the same with and without every
-speed-up (the golden digests in sim/compare pin them).
+ratio of the first row of its kind (the full search: every speed-up on, one
+worker for turns, two for the 32-boat decision). Decisions are the same with
+and without every speed-up (the golden digests in sim/compare pin them). The
+scenarios are fixed: the list below is every command's.
 
   harbor turn        one robot's turn, 4 boats at the corner dock (5 controls)
   upkeep turn        one robot's turn, 4 robots on the demo solar park
   harbor decision    a whole one-at-a-time decision for 32 boats (32 turns)
 
 Effort: 16 samples per Q-factor, horizon 20 (the defaults).
-ns_per_robot_step divides by the robot-steps actually simulated.`)
+ns/robot-step (ns_per_robot_step in --json) divides by the robot-steps
+actually simulated.`)
 	blocks := fs.Int("blocks", 5, "alternating blocks (the median over them is reported)")
-	blockTime := fs.Duration("block", 300*time.Millisecond, "time each configuration runs in a block")
+	blockTime := fs.Duration("block", 300*time.Millisecond, "time each configuration runs in a block (1ms..1m; at least one op runs)")
 	asJSON := fs.Bool("json", false, "print one JSON object")
 	if err := parse(fs, args); err != nil {
 		return err
 	}
-	if *blocks < 1 || *blocks > 1000 || *blockTime <= 0 || *blockTime > time.Minute {
-		return fmt.Errorf("--blocks must be 1..1000 and --block between 0 and 1m")
+	if *blocks < 1 || *blocks > 1000 {
+		return fmt.Errorf("--blocks %d: want 1..1000 blocks", *blocks)
+	}
+	if *blockTime < time.Millisecond || *blockTime > time.Minute {
+		return fmt.Errorf("--block %v: want 1ms..1m per configuration and block", *blockTime)
 	}
 	arms, err := searchArms()
 	if err != nil {
@@ -75,7 +80,7 @@ ns_per_robot_step divides by the robot-steps actually simulated.`)
 			}
 			var ops, steps int64
 			start := time.Now()
-			for time.Since(start) < *blockTime {
+			for ops == 0 || time.Since(start) < *blockTime {
 				steps += a.op()
 				ops++
 			}
@@ -93,7 +98,7 @@ ns_per_robot_step divides by the robot-steps actually simulated.`)
 		}
 	}
 	if *asJSON {
-		return json.NewEncoder(os.Stdout).Encode(map[string]any{"blocks": *blocks, "block_ms": blockTime.Milliseconds(), "rows": arms})
+		return json.NewEncoder(os.Stdout).Encode(map[string]any{"blocks": *blocks, "block_us": blockTime.Microseconds(), "rows": arms})
 	}
 	wn := len("configuration")
 	for _, a := range arms {
@@ -107,7 +112,7 @@ ns_per_robot_step divides by the robot-steps actually simulated.`)
 		}
 		fmt.Printf("%-*s %7d %10.1f %14.1f %14s\n", wn, a.Name, a.Workers, a.UsPerOp, a.NsPerStep, vs)
 	}
-	fmt.Printf("\nmedians of %d alternating blocks of %v each; op = one turn, or one whole decision\n", *blocks, *blockTime)
+	fmt.Printf("\nmedian over %d alternating block(s) of %v per configuration; op = one turn, or one whole decision\n", *blocks, *blockTime)
 	return nil
 }
 

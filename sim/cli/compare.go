@@ -13,7 +13,7 @@ import (
 )
 
 func cmdCompare(args []string) error {
-	fs := newFlags("compare", "Runs policies (by default base, all-at-once and one-at-a-time rollout; also the\nassignment and auction baselines and rollout on them) on the same seeded episodes\nand prints mean cost (95% CI), mean steps, Q-factors, milliseconds, messages\nbetween robots and, for the auction, bidding rounds per decision.")
+	fs := newFlags("compare", "Runs policies (by default base, all-at-once and one-at-a-time rollout; also the\nassignment and auction baselines and rollout on them) on the same seeded episodes\nand prints mean cost (95% CI), mean steps, Q-factors, milliseconds, messages\nbetween robots and, for the auction, bidding rounds per decision.\n\nMessages are counted as a fleet would exchange them: none for base, assignment\nand all-at-once (computed alike from the shared state, or by one process), each\nrobot's decision to every other for one-at-a-time rollout (m(m-1)), and one per\nrobot per neighbour per bidding round for the auction, whose rounds include those\nthat confirm nothing changes any more.")
 	var sc scenarioFlags
 	sc.register(fs)
 	episodes := fs.Int("episodes", 30, "seeded episodes per policy")
@@ -54,7 +54,10 @@ func cmdCompare(args []string) error {
 		return err
 	}
 	opts.Episodes, opts.Seed, opts.MaxJoint, opts.Order, opts.Now = *episodes, *seed, *maxJoint, ord, time.Now
-	opts.Decide, opts.Policies = dc, strings.Split(*policies, ",")
+	opts.Decide = dc
+	for _, name := range strings.Split(*policies, ",") {
+		opts.Policies = append(opts.Policies, strings.TrimSpace(name))
+	}
 	opts.Progress = progress("episodes")
 	rep, err := compare.Run(m, opts)
 	if err != nil {

@@ -1,4 +1,5 @@
-// Package compare runs base, all-at-once and one-at-a-time rollout on the
+// Package compare runs policies (base, all-at-once and one-at-a-time
+// rollout, the assignment and auction baselines, rollout on either) on the
 // same seeded episodes and summarises their cost and effort.
 package compare
 
@@ -64,17 +65,23 @@ type Row struct {
 	MsPerDecision float64 `json:"ms_per_decision"`
 	// MessagesPerDecision counts messages between robots per joint
 	// decision as a fleet would exchange them: none for a policy every
-	// robot computes alike from the shared state (base, assignment), each
-	// robot's decision to every other for one-at-a-time rollout (m(m-1)),
-	// and one per robot per neighbour per bidding round for the auction.
+	// robot computes alike from the shared state (base, assignment) or one
+	// process decides whole (all-at-once), each robot's decision to every
+	// other for one-at-a-time rollout (m(m-1)), and one per robot per
+	// neighbour per bidding round for the auction.
 	MessagesPerDecision float64 `json:"messages_per_decision"`
-	// BiddingRounds is the auction's rounds of bidding per decision
-	// (including those that confirm nothing changes any more) and
-	// SettledRound the round in which its last change came.
-	BiddingRounds float64 `json:"bidding_rounds_per_decision,omitempty"`
-	SettledRound  float64 `json:"settled_round_per_decision,omitempty"`
-	// Unsettled is how many auctions hit their round cap.
-	Unsettled int       `json:"auctions_unsettled,omitempty"`
+	// The auction's row only. BiddingRounds is its rounds of bidding per
+	// decision, counting the rounds that confirm nothing changes any more
+	// and 0 for a step with nothing to bid for; SettledRound is the round
+	// of the last change, averaged the same way.
+	BiddingRounds *float64 `json:"bidding_rounds_per_decision,omitempty"`
+	SettledRound  *float64 `json:"settled_round_per_decision,omitempty"`
+	// Auction rows (the auction, and rollout on it, whose base policy runs
+	// an auction at every simulated step): auctions that met their round
+	// cap (the robots followed their paths as they stood) and that could not
+	// run (the scenario's own base policy decided).
+	Unsettled *int64    `json:"auctions_unsettled,omitempty"`
+	Failed    *int64    `json:"auctions_failed,omitempty"`
 	Costs     []float64 `json:"-"`
 }
 
@@ -90,6 +97,16 @@ type Report struct {
 	Skipped  []string `json:"skipped,omitempty"`
 	// CostKind says what mean_cost is.
 	CostKind string `json:"cost_kind"`
+	// Auction is the auction's settings, when an auction policy ran.
+	Auction *AuctionSettings `json:"auction,omitempty"`
+}
+
+// AuctionSettings are the auction's, as a report records them (Range 0:
+// every robot hears every other).
+type AuctionSettings struct {
+	Lambda float64 `json:"lambda"`
+	Bundle int     `json:"bundle"`
+	Range  int     `json:"range"`
 }
 
 // CostKind is what an episode's cost is in a comparison of m.
@@ -123,7 +140,15 @@ func Run(m model.Model, o Options) (*Report, error) {
 	rep := &Report{Scenario: m.Name(), Robots: m.Robots(), Episodes: o.Episodes, Seed: o.Seed, CostKind: CostKind(m),
 		Samples: d.Config().Samples, Horizon: d.Config().Horizon}
 	var run []string
+	seen := map[string]bool{}
 	for _, name := range o.Policies {
+		if name == "" {
+			return nil, fmt.Errorf("--policies: an empty name in the list (known: %s)", strings.Join(known, ", "))
+		}
+		if seen[name] {
+			return nil, fmt.Errorf("--policies: %s listed twice", name)
+		}
+		seen[name] = true
 		switch name {
 		case Base, OneAtTime:
 		case Assignment, OneOnAssign:
@@ -141,6 +166,8 @@ func Run(m model.Model, o Options) (*Report, error) {
 					return nil, err
 				}
 				auctioned, dq = a, decide.New(a.Model(), o.Decide)
+				c := a.Config()
+				rep.Auction = &AuctionSettings{Lambda: c.Lambda, Bundle: c.Bundle, Range: c.Range}
 			}
 		case AllAtOnce:
 			joint := math.Pow(float64(m.MaxControls()), float64(m.Robots()))
@@ -161,8 +188,10 @@ func Run(m model.Model, o Options) (*Report, error) {
 		row := Row{Name: name}
 		var steps, decisions, qf int
 		var compute time.Duration
+		var unsettled0, failed0 int64
 		if auctioned != nil {
-			auctioned.Decisions, auctioned.Rounds, auctioned.Settled, auctioned.Messages, auctioned.Unsettled = 0, 0, 0, 0, 0
+			auctioned.Decisions, auctioned.Rounds, auctioned.Settled, auctioned.Messages, auctioned.Unsettled, auctioned.Failed = 0, 0, 0, 0, 0, 0
+			unsettled0, failed0, _ = auction.Troubles(auctioned.Model())
 		}
 		for i := range o.Episodes {
 			seed := episode.Seed(o.Seed, i)
@@ -208,9 +237,14 @@ func Run(m model.Model, o Options) (*Report, error) {
 			case Auction:
 				n := float64(auctioned.Decisions)
 				row.MessagesPerDecision = float64(auctioned.Messages) / n
-				row.BiddingRounds = float64(auctioned.Rounds) / n
-				row.SettledRound = float64(auctioned.Settled) / n
-				row.Unsettled = auctioned.Unsettled
+				rounds, settled := float64(auctioned.Rounds)/n, float64(auctioned.Settled)/n
+				unsettled, failed := int64(auctioned.Unsettled), int64(auctioned.Failed)
+				row.BiddingRounds, row.SettledRound, row.Unsettled, row.Failed = &rounds, &settled, &unsettled, &failed
+			}
+			if name == OneOnAuction {
+				u, f, _ := auction.Troubles(auctioned.Model())
+				u, f = u-unsettled0, f-failed0
+				row.Unsettled, row.Failed = &u, &f
 			}
 		}
 		rep.Policies = append(rep.Policies, row)
@@ -256,21 +290,37 @@ func (r *Report) WriteTable(w io.Writer) {
 	fmt.Fprintf(w, "%-*s %11s %9s %11s %11s %12s %10s %14s\n", wn, "policy", "mean cost", "95% CI", "mean steps",
 		"Q/decision", "ms/decision", "msgs/dec", "bid rounds/dec")
 	fmt.Fprintln(w, strings.Repeat("-", wn+86))
-	unsettled := 0
 	for _, p := range r.Policies {
 		rounds := "-"
-		if p.BiddingRounds > 0 {
-			rounds = fmt.Sprintf("%.2f", p.BiddingRounds)
+		if p.BiddingRounds != nil {
+			rounds = fmt.Sprintf("%.2f", *p.BiddingRounds)
 		}
-		fmt.Fprintf(w, "%-*s %11.2f %9s %11.1f %11.0f %12.3f %10.1f %14s\n", wn, p.Name, p.MeanCost, fmt.Sprintf("±%.2f", p.CI95),
+		ci := fmt.Sprintf("±%.2f", p.CI95)
+		if r.Episodes < 2 {
+			ci = "-" // one episode has no interval
+		}
+		fmt.Fprintf(w, "%-*s %11.2f %9s %11.1f %11.0f %12.3f %10.1f %14s\n", wn, p.Name, p.MeanCost, ci,
 			p.MeanSteps, p.QPerDecision, p.MsPerDecision, p.MessagesPerDecision, rounds)
-		unsettled += p.Unsettled
 	}
-	if unsettled > 0 {
-		fmt.Fprintf(w, "%d auctions did not settle within their round cap (the robots followed their paths as they stood)\n", unsettled)
+	for _, p := range r.Policies {
+		if p.Unsettled != nil && *p.Unsettled > 0 {
+			fmt.Fprintf(w, "%s: %d auctions did not settle within their round cap (the robots followed their paths as they stood)\n", p.Name, *p.Unsettled)
+		}
+		if p.Failed != nil && *p.Failed > 0 {
+			fmt.Fprintf(w, "%s: %d auctions could not run (the scenario's own base policy decided)\n", p.Name, *p.Failed)
+		}
 	}
 	for _, s := range r.Skipped {
 		fmt.Fprintln(w, s)
 	}
+	if a := r.Auction; a != nil {
+		hear := "every robot hears every other"
+		if a.Range > 0 {
+			hear = fmt.Sprintf("robots hear those within %d", a.Range)
+		}
+		fmt.Fprintf(w, "\nauction: a target's worth x%g per step of travel, at most %d targets per robot, %s\n", a.Lambda, a.Bundle, hear)
+	}
+	fmt.Fprintf(w, "msgs/dec: messages between robots per decision (rollout: each robot's decision to every other;\n"+
+		"auction: one per robot per neighbour per bidding round); bid rounds/dec counts the rounds that confirm the result\n")
 	fmt.Fprintf(w, "\ncost: %s\n", r.CostKind)
 }

@@ -135,18 +135,43 @@ func TestAuctionInComparison(t *testing.T) {
 		if a == nil || oa == nil || as == nil {
 			t.Fatalf("%s: rows missing", rep.Scenario)
 		}
-		if a.BiddingRounds < 1 || a.SettledRound > a.BiddingRounds || math.Abs(a.MessagesPerDecision-6*a.BiddingRounds) > 1e-9 {
+		if a.BiddingRounds == nil || a.SettledRound == nil || *a.BiddingRounds <= 0 || *a.SettledRound > *a.BiddingRounds ||
+			math.Abs(a.MessagesPerDecision-6**a.BiddingRounds) > 1e-9 || a.Unsettled == nil || *a.Unsettled != 0 {
 			t.Fatalf("%s: auction row %+v", rep.Scenario, a)
 		}
-		if oa.MessagesPerDecision != 6 || as.MessagesPerDecision != 0 || oa.BiddingRounds != 0 {
+		if oa.MessagesPerDecision != 6 || as.MessagesPerDecision != 0 || oa.BiddingRounds != nil || oa.Unsettled == nil || as.Unsettled != nil {
 			t.Fatalf("%s: rollout on the auction %+v, assignment %+v", rep.Scenario, oa, as)
+		}
+		if rep.Auction == nil || rep.Auction.Lambda != 0.9 || rep.Auction.Bundle != 2 || rep.Auction.Range != 0 {
+			t.Fatalf("%s: auction settings %+v", rep.Scenario, rep.Auction)
 		}
 		var b strings.Builder
 		rep.WriteTable(&b)
-		for _, col := range []string{"msgs/dec", "bid rounds/dec", "one-at-a-time+auction"} {
+		for _, col := range []string{"msgs/dec", "bid rounds/dec", "one-at-a-time+auction", "auction: a target's worth x0.9"} {
 			if !strings.Contains(b.String(), col) {
 				t.Fatalf("table lacks %q:\n%s", col, b.String())
 			}
+		}
+	}
+}
+
+// A policy list with an empty name or a name twice is refused, naming it.
+func TestPolicyListErrors(t *testing.T) {
+	m, err := harbor.Default(2)
+	if err != nil {
+		t.Fatal(err)
+	}
+	for _, c := range []struct {
+		list []string
+		want string
+	}{
+		{[]string{""}, "empty name"},
+		{[]string{Auction, Auction}, "auction listed twice"},
+		{[]string{Base, "nope"}, `unknown policy "nope"`},
+	} {
+		_, err := Run(m, Options{Episodes: 1, Policies: c.list})
+		if err == nil || !strings.Contains(err.Error(), c.want) {
+			t.Errorf("%q: err %v, want %q", c.list, err, c.want)
 		}
 	}
 }
