@@ -320,7 +320,7 @@ func (r *Report) WriteTable(w io.Writer) {
 		}
 		fmt.Fprintf(w, "\nauction: a target's worth x%g per step of travel, at most %d targets per robot, %s\n", a.Lambda, a.Bundle, hear)
 	}
-	fmt.Fprintf(w, "msgs/dec: messages between robots per decision (rollout: each robot's decision to every other;\n"+
+	fmt.Fprintf(w, "\nmsgs/dec: messages between robots per decision (rollout: each robot's decision to every other;\n"+
 		"auction: one per robot per neighbour per bidding round); bid rounds/dec counts the rounds that confirm the result\n")
 	fmt.Fprintf(w, "\ncost: %s\n", r.CostKind)
 }
