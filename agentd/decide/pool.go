@@ -8,12 +8,16 @@ import (
 )
 
 // spinFor is how long an idle pool worker keeps polling for the next job
-// before it parks. Starting or waking a goroutine on an idle core took
-// 130-160 us (median) on the 2-vCPU machines this was measured on, about
-// a whole turn's work, so a freshly woken worker would mostly arrive after
-// the turn was done; a worker still polling joins in well under a
-// microsecond. Back-to-back turns (a whole decision, a comparison) keep
-// their workers polling; a robot's single turn per round pays one wake.
+// before it parks, when jobs have been coming that close together.
+// Starting or waking a goroutine on an idle core took 130-160 us (median)
+// on the 2-vCPU machines this was measured on, about a whole turn's work,
+// so a freshly woken worker would mostly arrive after the turn was done; a
+// worker still polling joins in well under a microsecond. Back-to-back
+// turns (a whole decision, a comparison) keep their workers polling. A
+// robot's single turn per round does not: its jobs come milliseconds
+// apart, so its workers park at once rather than take a core from other
+// processes (on one machine, the next robot's turn), and each turn pays
+// one wake.
 const spinFor = 200 * time.Microsecond
 
 // job is one parallel evaluation: tasks 0..tasks-1, claimed through next,
@@ -35,6 +39,8 @@ type pool struct {
 	cur    atomic.Pointer[job]
 	quit   atomic.Bool
 	parked atomic.Int32
+	spin   atomic.Bool // the last two jobs came within spinFor: poll between them
+	last   time.Time   // when the caller's last job ended (do is never concurrent)
 	mu     sync.Mutex
 	wake   *sync.Cond
 	start  sync.Once
@@ -54,6 +60,7 @@ func (p *pool) do(tasks int, run func(w, task int)) {
 			go p.loop(w)
 		}
 	})
+	p.spin.Store(!p.last.IsZero() && time.Since(p.last) < spinFor)
 	j := &job{tasks: tasks, run: run}
 	j.pending.Store(int64(tasks))
 	p.cur.Store(j)
@@ -70,6 +77,7 @@ func (p *pool) do(tasks int, run func(w, task int)) {
 		runtime.Gosched()
 	}
 	p.cur.Store(nil) // let the job's closure (and what it holds) go
+	p.last = time.Now()
 }
 
 func (j *job) work(w int) {
@@ -88,7 +96,7 @@ func (p *pool) loop(w int) {
 	for {
 		t0 := time.Now()
 		for spins := 0; p.gen.Load() == seen && !p.quit.Load(); spins++ {
-			if spins&63 == 63 && time.Since(t0) > spinFor {
+			if !p.spin.Load() || (spins&63 == 63 && time.Since(t0) > spinFor) {
 				p.mu.Lock()
 				p.parked.Add(1)
 				for p.gen.Load() == seen && !p.quit.Load() {
