@@ -222,3 +222,14 @@ func TestWorkersStopWithDecider(t *testing.T) {
 		time.Sleep(10 * time.Millisecond)
 	}
 }
+
+// The upkeep turn on two workers, against BenchmarkTurnUpkeep.
+func BenchmarkTurnUpkeep2Workers(b *testing.B) {
+	m, err := upkeep.Default(4)
+	if err != nil {
+		b.Fatal(err)
+	}
+	x := m.NewState()
+	m.Start(x, nil)
+	benchTurnWorkers(b, m, x, 2)
+}
