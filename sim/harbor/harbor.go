@@ -352,56 +352,17 @@ func (m *Model) Alias(st model.State, r, c int) int {
 	return c
 }
 
-// jointBoats bounds the fleets BaseAll serves in one pass (its scratch is
-// on the stack, and zeroing a larger one costs more than it saves); larger
-// fleets take Base robot by robot, the same controls.
-const jointBoats = 8
-
 var _ model.JointBaser = (*Model)(nil)
 
-// BaseAll is Base for every boat in one pass over the slicks: each live
-// slick's coordinates are looked up once rather than once per boat.
-func (m *Model) BaseAll(st model.State, u []int) {
-	s := st.(*State)
-	nb := len(s.Boats)
-	if nb == 0 {
-		return
-	}
-	if nb > jointBoats {
-		m.baseMany(s, u)
-		return
-	}
-	var bx, by, best [jointBoats]int
-	for r, b := range s.Boats {
-		bx[r], by[r] = m.XY(b)
-		best[r] = noSlick
-	}
-	_, _ = bx[nb-1], by[nb-1] // one bounds check, not one per slick
-	for _, c := range s.Slicks {
-		if c < 0 {
-			continue
-		}
-		cx, cy := m.XY(c)
-		for r := range nb {
-			best[r] = min(best[r], nearKey(iabs(cx-bx[r])+iabs(cy-by[r]), c))
-		}
-	}
-	for r := range u {
-		u[r] = Hold
-		if best[r] != noSlick {
-			tx, ty := m.XY(int32(best[r] & keyCell))
-			u[r] = toward(bx[r], by[r], tx, ty)
-		}
-	}
-}
-
-// liveSlicks bounds the live slicks baseMany gathers on the stack.
+// liveSlicks bounds the live slicks BaseAll gathers on the stack; with more,
+// it takes Base boat by boat, the same controls.
 const liveSlicks = 16
 
-// baseMany is BaseAll for a larger fleet: the live slicks' coordinates
-// gathered once, then boat by boat, a boat on the same cell as the one
-// before it taking its control (fleets leave a dock together).
-func (m *Model) baseMany(s *State, u []int) {
+// BaseAll is Base for every boat: the live slicks' coordinates gathered
+// once rather than looked up once per boat, and a boat on the same cell as
+// the one before it taking its control (fleets leave a dock together).
+func (m *Model) BaseAll(st model.State, u []int) {
+	s := st.(*State)
 	var sx, sy [liveSlicks]int
 	var sc [liveSlicks]int32
 	n := 0

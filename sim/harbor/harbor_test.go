@@ -221,17 +221,17 @@ func TestStartWhenBoatsCoverTheGrid(t *testing.T) {
 	}
 }
 
-// BaseAll, one pass over the slicks for the whole fleet, gives every boat
-// Base's control: seeded harbors of 1..70 boats, scattered or from the
-// dock, with 8 or 20 slicks (past each fast path's bound too), stepped
-// along with random controls.
+// BaseAll, the live slicks gathered once for the whole fleet, gives every
+// boat Base's control: seeded harbors of 1..70 boats, scattered or from the
+// dock (boats sharing cells), with 8 or 20 slicks (past the gathered
+// bound), stepped along with random controls.
 func TestBaseAllIsBase(t *testing.T) {
 	for seed := uint64(1); seed <= 40; seed++ {
 		cfg := Defaults()
 		cfg.Robots = 1 + int(seed*7%70)
 		cfg.Scatter = seed%2 == 1 // else from the dock: boats sharing cells
 		if seed%3 == 0 {
-			cfg.Slicks = 20 // more live slicks than baseMany gathers
+			cfg.Slicks = 20 // more live slicks than BaseAll gathers
 		}
 		m, err := New(cfg)
 		if err != nil {
