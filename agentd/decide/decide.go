@@ -267,9 +267,9 @@ func (d *Decider) QFactors(x model.State, cands [][]int, seed uint64) ([]Estimat
 func (d *Decider) Turn(x model.State, r int, known []int, seed uint64) (int, Stats) {
 	m := d.m
 	n := m.NumControls(x, r)
-	// One BaseJoint rather than a Base per robot: a fleet-wide base policy
+	// The whole base joint control at once: a fleet-wide base policy
 	// (an assignment, an auction) then solves once per turn.
-	model.BaseJoint(m, x, d.joint)
+	d.baseJoint(x, d.joint)
 	for j := range d.joint {
 		if j != r && known[j] >= 0 {
 			d.joint[j] = known[j]

@@ -538,8 +538,7 @@ func (m *Model) BaseAll(s model.State, u []int) {
 		best, bestD, bestP := -1, 0, 0.0
 		d := m.dist[at*n : (at+1)*n]
 		for i := range nd {
-			site, q := int(due[i]), dq[i]
-			if best < 0 || d[site] < bestD || (d[site] == bestD && q > bestP) {
+			if site, q := int(due[i]), dq[i]; nearer(best, d[site], q, bestD, bestP) {
 				best, bestD, bestP = site, d[site], q
 			}
 		}
@@ -548,6 +547,14 @@ func (m *Model) BaseAll(s model.State, u []int) {
 			u[r] = m.hop[at*n+best]
 		}
 	}
+}
+
+// nearer is Base's rule for a due site at distance d with tail probability
+// q against the best so far (none when best < 0): nearer wins, then more
+// likely. Sites are offered in index order, so on a full tie the lower
+// index wins by staying.
+func nearer(best, d int, q float64, bestD int, bestP float64) bool {
+	return best < 0 || d < bestD || (d == bestD && q > bestP)
 }
 
 // Base is the base policy; see the package comment.
@@ -564,9 +571,7 @@ func (m *Model) Base(s model.State, r int) int {
 		if q <= m.threshProb {
 			continue
 		}
-		// Sites come in index order, so "lower index" wins ties by not
-		// replacing the incumbent.
-		if best < 0 || d[site] < bestD || (d[site] == bestD && q > bestP) {
+		if nearer(best, d[site], q, bestD, bestP) {
 			best, bestD, bestP = site, d[site], q
 		}
 	}

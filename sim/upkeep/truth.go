@@ -66,7 +66,7 @@ func (m *Model) Toward(a, b int) int { return m.hop[a*m.n+b] }
 // sees it: the chance it is at or past the threshold level exceeds the
 // threshold probability.
 func (m *Model) Due(s model.State, site int) bool {
-	return m.tailProb(m.belief(s.(*State), site)) > m.threshProb
+	return m.tail(s.(*State), site) > m.threshProb
 }
 
 // SurelyWorn reports whether robot r's site is surely not at level 0 in s
