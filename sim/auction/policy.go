@@ -302,15 +302,20 @@ func (c Config) graph(n int, dist func(a, b int) int) [][]int {
 // up what the auctions cost, for a comparison table's rounds and messages
 // per decision. It is not safe for concurrent use.
 type Policy struct {
+	Counts // what the auctions run so far cost; zero it to start counting again
+
+	m   auctioneer
+	cfg Config
+}
+
+// Counts add up what a Policy's auctions cost.
+type Counts struct {
 	Decisions int // auctions run, one per decision
 	Rounds    int // bidding rounds run, summed over the decisions
 	Settled   int // rounds until nothing changed, summed (see Stats.Settled)
 	Messages  int // messages sent, summed
 	Unsettled int // auctions that met their round cap
 	Failed    int // auctions that could not run (the scenario's base policy decided)
-
-	m   auctioneer
-	cfg Config
 }
 
 // NewPolicy wraps m (see Wrap) and returns the auction policy on it.

@@ -190,7 +190,7 @@ func Run(m model.Model, o Options) (*Report, error) {
 		var compute time.Duration
 		var unsettled0, failed0 int64
 		if auctioned != nil {
-			auctioned.Decisions, auctioned.Rounds, auctioned.Settled, auctioned.Messages, auctioned.Unsettled, auctioned.Failed = 0, 0, 0, 0, 0, 0
+			auctioned.Counts = auction.Counts{}
 			unsettled0, failed0, _ = auction.Troubles(auctioned.Model())
 		}
 		for i := range o.Episodes {
