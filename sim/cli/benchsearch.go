@@ -92,13 +92,15 @@ actually simulated.`)
 	for _, a := range arms {
 		a.UsPerOp, a.NsPerStep = fleetsum.Quantile(a.opTimes, 0.5), fleetsum.Quantile(a.stepTimes, 0.5)
 	}
+	wake := wakeLatency(100)
 	for _, a := range arms {
 		if a.ref != nil {
 			a.VsFull = a.UsPerOp / a.ref.UsPerOp
 		}
 	}
 	if *asJSON {
-		return json.NewEncoder(os.Stdout).Encode(map[string]any{"blocks": *blocks, "block_us": blockTime.Microseconds(), "rows": arms})
+		return json.NewEncoder(os.Stdout).Encode(map[string]any{"blocks": *blocks, "block_us": blockTime.Microseconds(), "rows": arms,
+			"goroutine_wake_us": wake})
 	}
 	wn := len("configuration")
 	for _, a := range arms {
@@ -113,7 +115,27 @@ actually simulated.`)
 		fmt.Printf("%-*s %7d %10.1f %14.1f %14s\n", wn, a.Name, a.Workers, a.UsPerOp, a.NsPerStep, vs)
 	}
 	fmt.Printf("\nmedian over %d alternating block(s) of %v per configuration; op = one turn, or one whole decision\n", *blocks, *blockTime)
+	fmt.Printf("a goroutine started on an idle core ran after %.0f us (median of 100, the starter busy meanwhile):\n"+
+		"why a decision's second worker polls while turns come back to back\n", wake)
 	return nil
+}
+
+// wakeLatency is the median time, in microseconds, from starting a
+// goroutine to its running, with the other cores idle a moment before and
+// the starter busy meanwhile (as worker 0 is): what a parked rollout
+// worker costs a turn before it joins.
+func wakeLatency(n int) float64 {
+	lat := make([]float64, 0, n)
+	for range n {
+		time.Sleep(200 * time.Microsecond) // let the other cores go idle
+		t0 := time.Now()
+		ran := make(chan time.Time, 1)
+		go func() { ran <- time.Now() }()
+		for time.Since(t0) < 2*time.Millisecond { // long enough never to cap the answer
+		}
+		lat = append(lat, float64((<-ran).Sub(t0).Nanoseconds())/1000)
+	}
+	return fleetsum.Quantile(lat, 0.5)
 }
 
 func searchArms() ([]*searchArm, error) {

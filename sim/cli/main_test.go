@@ -306,6 +306,7 @@ func TestBenchSearch(t *testing.T) {
 		t.Fatalf("exit %d: %s", code, errOut)
 	}
 	var rep struct {
+		Wake float64 `json:"goroutine_wake_us"`
 		Rows []struct {
 			Name   string  `json:"name"`
 			Us     float64 `json:"us_per_op"`
@@ -316,7 +317,7 @@ func TestBenchSearch(t *testing.T) {
 	if err := json.Unmarshal([]byte(out), &rep); err != nil {
 		t.Fatalf("%v\n%s", err, out)
 	}
-	if len(rep.Rows) != 10 {
+	if len(rep.Rows) != 10 || rep.Wake <= 0 {
 		t.Fatalf("%d rows: %s", len(rep.Rows), out)
 	}
 	for i, r := range rep.Rows {
