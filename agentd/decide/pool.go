@@ -9,15 +9,15 @@ import (
 
 // spinFor is how long an idle pool worker keeps polling for the next job
 // before it parks, when jobs have been coming that close together.
-// Starting or waking a goroutine on an idle core took 130-160 us (median)
-// on the 2-vCPU machines this was measured on, about a whole turn's work,
-// so a freshly woken worker would mostly arrive after the turn was done; a
-// worker still polling joins in well under a microsecond. Back-to-back
-// turns (a whole decision, a comparison) keep their workers polling. A
-// robot's single turn per round does not: its jobs come milliseconds
-// apart, so its workers park at once rather than take a core from other
-// processes (on one machine, the next robot's turn), and each turn pays
-// one wake.
+// Starting or waking a goroutine on an idle core took 130-200 us (median;
+// sim bench search measures it) on the 2-vCPU machines here, about a whole
+// turn's work, so a freshly woken worker would mostly arrive after the turn
+// was done; a worker still polling joins in well under a microsecond.
+// Back-to-back turns (a whole decision, a comparison) keep their workers
+// polling. A robot's single turn per round does not: its jobs come
+// milliseconds apart, so its workers park at once rather than take a core
+// from other processes (on one machine, the next robot's turn), and each
+// turn pays one wake.
 const spinFor = 200 * time.Microsecond
 
 // job is one parallel evaluation: tasks 0..tasks-1, claimed through next,
