@@ -73,12 +73,7 @@ func (k upkeepAssign) Base(s model.State, r int) int {
 
 func (k upkeepAssign) BaseAll(s model.State, u []int) {
 	pos := k.Positions(s)
-	var targets []int
-	for site := range k.NumSites() {
-		if k.Due(s, site) {
-			targets = append(targets, site)
-		}
-	}
+	targets := k.DueSites(s, nil)
 	var to []int
 	if len(targets) > 0 {
 		cost := make([][]float64, len(pos))

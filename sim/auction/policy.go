@@ -195,9 +195,7 @@ func (h harborAuction) auction(s model.State, u []int) (Stats, error) {
 		Score:      td.Score, MaxRounds: h.cfg.MaxRounds,
 	})
 	if res.Paths == nil {
-		for r := range u {
-			u[r] = h.Model.Base(s, r)
-		}
+		h.Model.BaseAll(s, u)
 		return res.Stats, err
 	}
 	for r := range u {
@@ -231,12 +229,7 @@ func (k upkeepAuction) troubles() *tally { return k.t }
 
 func (k upkeepAuction) auction(s model.State, u []int) (Stats, error) {
 	pos := k.Positions(s)
-	var targets []int
-	for site := range k.NumSites() {
-		if k.Due(s, site) {
-			targets = append(targets, site)
-		}
-	}
+	targets := k.DueSites(s, nil)
 	var res Result
 	var err error
 	if len(targets) > 0 {
@@ -258,9 +251,7 @@ func (k upkeepAuction) auction(s model.State, u []int) (Stats, error) {
 			Score:      td.Score, MaxRounds: k.cfg.MaxRounds,
 		})
 		if res.Paths == nil {
-			for r := range u {
-				u[r] = k.Model.Base(s, r)
-			}
+			k.Model.BaseAll(s, u)
 			return res.Stats, err
 		}
 	}

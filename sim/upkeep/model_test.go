@@ -572,11 +572,16 @@ func TestBaseAllIsBase(t *testing.T) {
 	due := 0
 	for step := range 300 {
 		check(m, s, fmt.Sprintf("park step %d", step))
+		var want []int
 		for site := range m.NumSites() {
 			if m.Due(s, site) {
-				due++
+				want = append(want, site)
 			}
 		}
+		if got := m.DueSites(s, nil); !slices.Equal(got, want) {
+			t.Fatalf("park step %d: DueSites %v, Due says %v", step, got, want)
+		}
+		due += len(want)
 		for r := range u {
 			u[r] = rng.IntN(m.NumControls(s, r))
 		}

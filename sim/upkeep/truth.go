@@ -69,6 +69,18 @@ func (m *Model) Due(s model.State, site int) bool {
 	return m.tail(s.(*State), site) > m.threshProb
 }
 
+// DueSites appends to dst the sites due for service in s (Due), in index
+// order: the targets the baselines assign and auction.
+func (m *Model) DueSites(s model.State, dst []int) []int {
+	st := s.(*State)
+	for site := range m.n {
+		if m.tail(st, site) > m.threshProb {
+			dst = append(dst, site)
+		}
+	}
+	return dst
+}
+
 // SurelyWorn reports whether robot r's site is surely not at level 0 in s
 // (the base policy services it then).
 func (m *Model) SurelyWorn(s model.State, r int) bool {
