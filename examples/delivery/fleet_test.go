@@ -6,6 +6,7 @@ import (
 	"slices"
 	"testing"
 
+	"baton/sim/fleetcheck"
 	"baton/sim/model"
 )
 
@@ -23,54 +24,23 @@ func fleetModels(t *testing.T) map[string]*Model {
 	return ms
 }
 
-// The model.Fleet round trip: from a copy z of x, Advance(z, u) and every
-// robot's report (Position and Sense of y = Step(x, u)) rebuild exactly y.
-// The next step starts from the rebuilt z, not from y, so a mismatch would
-// compound; random controls (half of them the base policy's, so parcels
-// get delivered) include invalid ones.
+// The model.Fleet round trip (sim/fleetcheck), invalid controls included
+// (they stay), with the carried parcels and destinations compared too.
 func TestFleetRoundTrip(t *testing.T) {
 	ms := fleetModels(t)
 	terminalSomewhere := 0
 	for i, name := range slices.Sorted(maps.Keys(ms)) {
-		m := ms[name]
-		rng := model.NewRNG(model.Mix(7, uint64(i)))
-		x, y, z := m.NewState(), m.NewState(), m.NewState()
-		u := make([]int, m.Robots())
-		var seen []model.Sighting
-		var fy, fz []int32
-		steps, terminal, full, carried := 0, 0, 0, 0
-		for range 20 {
-			m.Start(x, rng.Rand)
-			for t0, over := 0, 0; t0 < m.Horizon() && over < 3; t0++ {
-				if m.Terminal(x) {
-					over++
-					terminal++
-				}
-				for r := range u {
-					u[r] = rng.IntN(m.NumControls(x, r) + 1) // one past the end: invalid, stays
-					if rng.IntN(2) == 0 {
-						u[r] = m.Base(x, r)
-					}
-				}
-				m.CopyState(y, x)
-				m.CopyState(z, x)
-				cy := m.Step(y, u, rng.Rand)
-				cz := m.Advance(z, u)
-				if cy != cz {
-					t.Fatalf("%s: Step cost %g, Advance cost %g", name, cy, cz)
-				}
-				for r := range m.Robots() {
-					seen = m.Sense(y, r, seen[:0])
-					if err := m.Absorb(z, r, m.Position(y, r), seen); err != nil {
-						t.Fatalf("%s: Absorb: %v", name, err)
-					}
-				}
-				fy, _ = m.Flatten(y, fy[:0], nil)
-				fz, _ = m.Flatten(z, fz[:0], nil)
+		full, carried := 0, 0
+		st, err := fleetcheck.RoundTrip(ms[name], fleetcheck.Options{Seed: model.Mix(7, uint64(i)), Episodes: 20, Invalid: true,
+			Same: func(y, z model.State) error {
 				ys, zs := y.(*State), z.(*State)
-				if !slices.Equal(fy, fz) || !slices.Equal(ys.Carry, zs.Carry) || !slices.Equal(ys.To, zs.To) {
-					t.Fatalf("%s: after Step %v (carry %v), rebuilt %v (carry %v)", name, fy, ys.Carry, fz, zs.Carry)
+				if !slices.Equal(ys.Carry, zs.Carry) || !slices.Equal(ys.To, zs.To) {
+					return fmt.Errorf("after Step carry %v to %v, rebuilt carry %v to %v", ys.Carry, ys.To, zs.Carry, zs.To)
 				}
+				return nil
+			},
+			Visit: func(y model.State) {
+				ys := y.(*State)
 				if !slices.Contains(ys.At, -1) {
 					full++
 				}
@@ -79,15 +49,15 @@ func TestFleetRoundTrip(t *testing.T) {
 						carried++
 					}
 				}
-				m.CopyState(x, z)
-				steps++
-			}
+			}})
+		if err != nil {
+			t.Fatalf("%s: %v", name, err)
 		}
-		t.Logf("%s: %d steps, %d terminal, %d with every slot taken, %d robot-steps loaded", name, steps, terminal, full, carried)
+		t.Logf("%s: %d steps, %d terminal, %d with every slot taken, %d robot-steps loaded", name, st.Steps, st.Terminal, full, carried)
 		if carried == 0 {
 			t.Errorf("%s: no robot ever carried a parcel", name)
 		}
-		terminalSomewhere += terminal
+		terminalSomewhere += st.Terminal
 	}
 	if terminalSomewhere == 0 {
 		t.Error("no instance reached a terminal state: the check misses them")

@@ -6,6 +6,7 @@ import (
 	"slices"
 	"testing"
 
+	"baton/sim/fleetcheck"
 	"baton/sim/model"
 )
 
@@ -34,60 +35,24 @@ func fleetModels(t *testing.T) map[string]*Model {
 	return ms
 }
 
-// The model.Fleet round trip: Advance plus every boat's report rebuilds
-// exactly what Step produced, and the coordinator can carry on from its own
-// rebuilt state (x becomes z, not y), so any mismatch would compound.
+// The model.Fleet round trip (sim/fleetcheck), with the slicks left
+// compared too; episodes finish, so terminal states round-trip as well.
 func TestFleetRoundTrip(t *testing.T) {
 	ms := fleetModels(t)
 	for i, name := range slices.Sorted(maps.Keys(ms)) {
-		m := ms[name]
-		rng := model.NewRNG(model.Mix(7, uint64(i)))
-		x, y, z := m.NewState(), m.NewState(), m.NewState()
-		u := make([]int, m.Robots())
-		var seen []model.Sighting
-		var fy, fz []int32
-		steps, terminal := 0, 0
-		for range 30 {
-			m.Start(x, rng.Rand)
-			// Go on a few steps past the end: terminal states must round-trip too.
-			for t0, over := 0, 0; t0 < m.Horizon() && over < 3; t0++ {
-				if m.Terminal(x) {
-					over++
-					terminal++
+		st, err := fleetcheck.RoundTrip(ms[name], fleetcheck.Options{Seed: model.Mix(7, uint64(i)), Episodes: 30,
+			Same: func(y, z model.State) error {
+				if a, b := y.(*State).Left, z.(*State).Left; a != b {
+					return fmt.Errorf("%d slicks left after Step, %d rebuilt", a, b)
 				}
-				// Random controls, half of them replaced by the base policy's
-				// so that episodes also finish and reach terminal states.
-				for r := range u {
-					u[r] = rng.IntN(m.NumControls(x, r))
-					if rng.IntN(2) == 0 {
-						u[r] = m.Base(x, r)
-					}
-				}
-				m.CopyState(y, x)
-				m.CopyState(z, x)
-				cy := m.Step(y, u, rng.Rand)
-				cz := m.Advance(z, u)
-				if cy != cz {
-					t.Fatalf("%s: Step cost %g, Advance cost %g", name, cy, cz)
-				}
-				for r := range m.Robots() {
-					seen = m.Sense(y, r, seen[:0])
-					if err := m.Absorb(z, r, m.Position(y, r), seen); err != nil {
-						t.Fatalf("%s: Absorb: %v", name, err)
-					}
-				}
-				fy, _ = m.Flatten(y, fy[:0], nil)
-				fz, _ = m.Flatten(z, fz[:0], nil)
-				if !slices.Equal(fy, fz) || y.(*State).Left != z.(*State).Left {
-					t.Fatalf("%s: after Step %v (left %d), rebuilt %v (left %d)", name, fy, y.(*State).Left, fz, z.(*State).Left)
-				}
-				m.CopyState(x, z)
-				steps++
-			}
+				return nil
+			}})
+		if err != nil {
+			t.Fatalf("%s: %v", name, err)
 		}
-		t.Logf("%s: %d steps, %d on terminal states", name, steps, terminal)
-		if terminal == 0 {
-			t.Errorf("%s: no terminal state reached in %d steps", name, steps)
+		t.Logf("%s: %d steps, %d on terminal states", name, st.Steps, st.Terminal)
+		if st.Terminal == 0 {
+			t.Errorf("%s: no terminal state reached in %d steps", name, st.Steps)
 		}
 	}
 }

@@ -198,7 +198,7 @@ func FuzzUnflatten(f *testing.F) {
 		i0, r0 := m.Flatten(dst, nil, nil)
 		if err := m.Unflatten(dst, in, re); err != nil {
 			i1, r1 := m.Flatten(dst, nil, nil)
-			if !slices.Equal(i0, i1) || !bitsEqual(r0, r1) {
+			if !slices.Equal(i0, i1) || !sameBits(r0, r1) {
 				t.Fatalf("a refused snapshot (%v) changed the state", err)
 			}
 			return

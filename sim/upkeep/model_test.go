@@ -483,7 +483,7 @@ func TestTablesChangeNoBit(t *testing.T) {
 		}
 		i1, f1 := m.Flatten(s, nil, nil)
 		i2, f2 := plain.Flatten(p, nil, nil)
-		if !slices.Equal(i1, i2) || !bitsEqual(f1, f2) {
+		if !slices.Equal(i1, i2) || !sameBits(f1, f2) {
 			t.Fatalf("step %d: states differ", step)
 		}
 		for r := range u {
@@ -516,7 +516,7 @@ func TestTablesChangeNoBit(t *testing.T) {
 				ca, cb := m.Step(re, u, ra.Rand), plain.Step(q, u, rb.Rand)
 				ia, fa := m.Flatten(re, nil, nil)
 				ib, fb := plain.Flatten(q, nil, nil)
-				if math.Float64bits(ca) != math.Float64bits(cb) || !slices.Equal(ia, ib) || !bitsEqual(fa, fb) {
+				if math.Float64bits(ca) != math.Float64bits(cb) || !slices.Equal(ia, ib) || !sameBits(fa, fb) {
 					t.Fatal("a state rebuilt from its snapshot steps differently")
 				}
 			}
@@ -532,18 +532,6 @@ func TestTablesChangeNoBit(t *testing.T) {
 	if tabled == 0 || fallen == 0 {
 		t.Fatalf("%d tabled and %d propagated site-steps: want both paths used", tabled, fallen)
 	}
-}
-
-func bitsEqual(a, b []float64) bool {
-	if len(a) != len(b) {
-		return false
-	}
-	for i := range a {
-		if math.Float64bits(a[i]) != math.Float64bits(b[i]) {
-			return false
-		}
-	}
-	return true
 }
 
 // BaseAll, the due sites found once for the fleet, gives every robot
